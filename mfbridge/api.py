@@ -1,0 +1,88 @@
+"""Python entry points: compose a config, solve it, load a saved result.
+
+>>> import mfbridge
+>>> cfg = mfbridge.compose(["interaction=harmonic", "interaction.strength=1.5"])  # doctest: +SKIP
+>>> result = mfbridge.solve(cfg)                                                  # doctest: +SKIP
+>>> result.save("runs/example")                                                   # doctest: +SKIP
+>>> mfbridge.load("runs/example").cost                                            # doctest: +SKIP
+
+Hydra is imported only here, and only when a function needs it.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
+
+from mfbridge.errors import InputError
+from mfbridge.fixed_point import Iteration, SolverOptions, solve_bridge
+from mfbridge.problem import BridgeProblem
+from mfbridge.result import BridgeResult
+
+CONF_DIR = Path(__file__).resolve().parent.parent / "conf"
+GROUPS = ("grid", "confinement", "interaction", "endpoints", "solver")
+
+
+def compose(overrides: Sequence[str] | None = None, config_name: str = "config") -> Any:
+    """The run configuration (an OmegaConf ``DictConfig``) with Hydra-style ``overrides``.
+
+    Unknown groups, options or keys raise :class:`~mfbridge.errors.InputError` listing what exists.
+    """
+    from hydra import compose as hydra_compose
+    from hydra import initialize_config_dir
+    from hydra.errors import HydraException
+    from omegaconf.errors import OmegaConfBaseException
+
+    overrides = list(overrides or [])
+    try:
+        with initialize_config_dir(config_dir=str(CONF_DIR), version_base="1.3"):
+            return hydra_compose(config_name=config_name, overrides=overrides)
+    except (HydraException, OmegaConfBaseException) as exc:
+        raise InputError(f"invalid configuration {overrides}: {exc}") from exc
+
+
+def _build(cfg: Any, group: str) -> Any:
+    from hydra.utils import instantiate
+
+    try:
+        return instantiate(cfg[group])
+    except InputError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - hydra wraps constructor errors; report the cause
+        cause = exc.__cause__ or exc
+        raise InputError(f"config group {group!r}: {cause}") from exc
+
+
+def build_problem(cfg: Any) -> BridgeProblem:
+    """Instantiate the grid, potentials and endpoints of ``cfg`` into a :class:`BridgeProblem`."""
+    for key in (*GROUPS, "noise", "horizon", "steps"):
+        if key not in cfg:
+            raise InputError(f"the configuration has no {key!r} entry")
+    endpoints = _build(cfg, "endpoints")
+    if set(endpoints) != {"initial", "final"}:
+        raise InputError("the endpoints group must define exactly 'initial' and 'final'")
+    return BridgeProblem(
+        grid=_build(cfg, "grid"),
+        initial=endpoints["initial"],
+        final=endpoints["final"],
+        noise=cfg.noise,
+        horizon=cfg.horizon,
+        steps=cfg.steps,
+        confinement=_build(cfg, "confinement"),
+        interaction=_build(cfg, "interaction"),
+    )
+
+
+def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None) -> BridgeResult:
+    """Solve the bridge that ``cfg`` (from :func:`compose`) describes; the resolved config is
+    stored in the result."""
+    from omegaconf import OmegaConf
+
+    problem = build_problem(cfg)
+    options = _build(cfg, "solver")
+    if not isinstance(options, SolverOptions):
+        raise InputError("the solver group must build a mfbridge.fixed_point.SolverOptions")
+    result = solve_bridge(problem, options, callback)
+    result.config = OmegaConf.to_container(cfg, resolve=True)
+    return result

@@ -1,0 +1,24 @@
+"""Exceptions and warnings raised by mfbridge.
+
+Every mistake a user can make in their input is reported as an :class:`InputError` (a
+``ValueError``) whose message says what was expected, before any numerical work starts.
+"""
+
+from __future__ import annotations
+
+
+class MFBridgeError(Exception):
+    """Base class of all errors raised by mfbridge."""
+
+
+class InputError(MFBridgeError, ValueError):
+    """A user's input (a density, a parameter, a config option) is not valid."""
+
+
+class ConvergenceWarning(UserWarning):
+    """An iterative solver stopped before reaching its stated tolerance."""
+
+
+def unknown_name(kind: str, name: str, valid: list[str] | tuple[str, ...]) -> InputError:
+    """Error for an unknown option name, listing the valid ones."""
+    return InputError(f"unknown {kind} {name!r}; valid names are: {', '.join(sorted(valid))}")

@@ -1,0 +1,381 @@
+r"""The outer fixed-point loop: the minimiser of the mean-field rate function J.
+
+Freeze the marginal flow :math:`\bar\rho` in the interaction and a potential :math:`\bar V`; the
+reference becomes a Markov chain with drift :math:`-\nabla(U + W*\bar\rho_t)` weighted by
+:math:`e^{-\int \bar V_t(X_t)dt}`, and its Schrödinger bridge is an entropic problem
+(:mod:`mfbridge.entropic`). Update :math:`(\bar\rho, \bar V)` from the solution until
+self-consistent. The first-order condition of
+:math:`J(P) = \mathrm{KL}(P \,|\, \Gamma(P))` (Γ(P): the reference driven by P's own marginals)
+gives the potential
+
+.. math::
+
+    V_t(y) = \int \nabla W(x - y)\cdot\nabla\psi_t(x)\,\rho_t(dx),
+    \qquad u_t = \sigma^2\nabla\psi_t .
+
+On the grid we use the exact derivative of the space-discrete rate function: for the chain with
+rates :math:`q_{ij}(\rho)` and controlled rates :math:`q_{ij} h_j/h_i`, the relative-entropy rate
+is :math:`\sum_i \rho_i\sum_j q_{ij}\,\phi(h_j/h_i)` with :math:`\phi(r) = r\log r - r + 1`, and
+its derivative in the rates' argument is
+
+.. math::
+
+    V(y) = \sum_{i \to j} \rho_i \Bigl(1 - \frac{h_j}{h_i}\Bigr) \frac{\partial q_{ij}}{\partial \rho_y}
+         = \sum_x W(x - y)\, c(x),
+
+where :math:`c` collects, edge by edge, :math:`\rho_i(1 - h_j/h_i)\,\partial q_{ij}/\partial\Phi_j`
+(Scharfetter–Gummel rates depend on :math:`\Phi = U + W\star\rho` only through differences).
+Its continuum limit is the formula above. Method ``frozen`` keeps :math:`V = 0`: the
+self-consistent bridge, which is *not* the minimiser of J when W ≠ 0.
+
+Time: the drift of step k is frozen at the step midpoint, steps are exact exponentials, and the
+weight :math:`e^{-\int V}` uses the trapezoid rule, so the scheme is second order in Δt.
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+from threadpoolctl import threadpool_limits
+
+from mfbridge import entropic, observables
+from mfbridge.anderson import AndersonMixer
+from mfbridge.errors import ConvergenceWarning, InputError, unknown_name
+from mfbridge.problem import BridgeProblem
+from mfbridge.propagator import StepOperator
+from mfbridge.reference import PairField, bernoulli_derivative, edge_rates
+from mfbridge.result import BridgeResult
+
+METHODS = ("optimal", "frozen")
+ROUTES = ("auto", "operator", "dense")
+
+
+@dataclass(frozen=True)
+class SolverOptions:
+    """How to solve.
+
+    * ``method``: ``"optimal"`` (minimiser of J, with the correction V) or ``"frozen"``
+      (self-consistent frozen-reference bridge, V = 0);
+    * ``route``: ``"operator"`` (kernel applied by time steps), ``"dense"`` (n × n kernel, POT
+      Sinkhorn, also returns the coupling) or ``"auto"`` (dense for grids of at most
+      ``dense_max_cells`` cells, else operator);
+    * ``tol``: stop when the self-consistency residual
+      :math:`\\max_k\\|p_k - \\bar p_k\\|_1 + T\\max_k \\sum_i p_{k,i}|V_{k,i} - \\bar V_{k,i}|`
+      and the L1 error of the initial marginal are both below it;
+    * ``anderson`` (history depth, 0 = plain iteration) and ``damping`` (mixing weight in (0, 1]);
+    * ``sinkhorn_tol``, ``sinkhorn_max_iter``: the entropic sub-problem's own stopping rule (its
+      tolerance is loosened to 1e-2 × the outer residual while the outer loop is far out).
+    """
+
+    method: str = "optimal"
+    route: str = "auto"
+    tol: float = 1e-9
+    max_iter: int = 300
+    anderson: int = 6
+    damping: float = 1.0
+    sinkhorn_tol: float = 1e-11
+    sinkhorn_max_iter: int = 5000
+    dense_max_cells: int = 64
+
+    def __post_init__(self) -> None:
+        if self.method not in METHODS:
+            raise unknown_name("method", self.method, METHODS)
+        if self.route not in ROUTES:
+            raise unknown_name("route", self.route, ROUTES)
+        checks = [
+            ("tol", self.tol > 0),
+            ("sinkhorn_tol", self.sinkhorn_tol > 0),
+            ("max_iter", int(self.max_iter) == self.max_iter and self.max_iter >= 1),
+            ("sinkhorn_max_iter", int(self.sinkhorn_max_iter) == self.sinkhorn_max_iter
+             and self.sinkhorn_max_iter >= 1),
+            ("anderson", int(self.anderson) == self.anderson and self.anderson >= 0),
+            ("damping", 0 < self.damping <= 1),
+            ("dense_max_cells", self.dense_max_cells >= 0),
+        ]
+        for name, ok in checks:
+            if not ok:
+                raise InputError(f"solver option {name} has an invalid value {getattr(self, name)!r}")
+
+
+@dataclass(frozen=True)
+class Iteration:
+    """One outer iteration, as passed to the progress callback."""
+
+    iteration: int
+    residual: float
+    marginal_error: float
+    sinkhorn_iterations: int
+    seconds: float
+
+
+@dataclass
+class _Solved:
+    """Everything one frozen solve yields."""
+
+    sol: entropic.EntropicSolution
+    p: np.ndarray  # masses (K+1, *shape)
+    log_f: np.ndarray  # forward Schrödinger potential at each node
+    log_h: np.ndarray  # backward Schrödinger potential psi at each node
+    phi: np.ndarray  # U + W*p at each node
+
+
+class _Bridge:
+    """Discretised problem: grid, potentials on the grid, time weights."""
+
+    def __init__(self, problem: BridgeProblem) -> None:
+        self.problem = problem
+        grid = problem.grid
+        self.grid = grid
+        self.shape = grid.shape
+        self.k_steps = problem.steps
+        self.dt = problem.dt
+        self.confinement = np.asarray(problem.confinement.value(grid.points), dtype=float)
+        if self.confinement.shape != grid.shape or not np.all(np.isfinite(self.confinement)):
+            raise InputError("the confinement potential is not finite at every grid point")
+        try:
+            self.pair = PairField(grid, problem.interaction)
+        except ValueError as exc:
+            raise InputError(str(exc)) from exc
+        self.omega = np.full(self.k_steps + 1, self.dt)
+        self.omega[[0, -1]] = self.dt / 2
+        # share of V_k attributed to the backward potential at node k (trapezoid split)
+        self.half = np.full(self.k_steps + 1, self.dt / 2)
+        self.half[-1] = 0.0
+
+    def expand(self, w: np.ndarray) -> np.ndarray:
+        return w.reshape(-1, *([1] * self.grid.dim))
+
+    def potential(self, p: np.ndarray) -> np.ndarray:
+        return self.confinement + self.pair(p)
+
+    def reference(self, p_bar: np.ndarray, v_bar: np.ndarray) -> entropic.FrozenReference:
+        phi = self.potential(p_bar)
+        phi_mid = 0.5 * (phi[:-1] + phi[1:])
+        rates = edge_rates(phi_mid, self.grid, self.problem.noise)
+        steps = []
+        for k in range(self.k_steps):
+            rk = type(rates)(tuple(r[k] for r in rates.forward), tuple(r[k] for r in rates.backward))
+            steps.append(StepOperator(rk, self.dt, self.shape))
+        return entropic.FrozenReference(steps, -self.expand(self.omega) * v_bar)
+
+    def solved(self, sol: entropic.EntropicSolution, ref: entropic.FrozenReference,
+               v_bar: np.ndarray) -> _Solved:
+        log_p = sol.log_marginals(ref.log_weights)
+        p = np.exp(log_p)
+        log_half = -self.expand(self.half) * v_bar
+        log_h = sol.log_backward + log_half
+        log_f = sol.log_forward + ref.log_weights - log_half
+        return _Solved(sol, p, log_f, log_h, self.potential(p))
+
+    def correction(self, s: _Solved) -> np.ndarray:
+        """The potential V (K+1, *shape) from the flow, potentials and Φ of one solve."""
+        noise = self.problem.noise
+        beta = 2.0 / noise**2
+        c = np.zeros_like(s.p)
+        for a in range(self.grid.dim):
+            ax = 1 + a
+            n = self.shape[a]
+            lo, hi = slice(0, n - 1), slice(1, n)
+
+            def take(x: np.ndarray, sl: slice, ax: int = ax) -> np.ndarray:
+                index = [slice(None)] * x.ndim
+                index[ax] = sl
+                return x[tuple(index)]
+
+            dphi = np.diff(s.phi, axis=ax)
+            scale = 0.5 * noise**2 / self.grid.spacing[a] ** 2 * beta
+            # rho_i (1 - h_j/h_i) = p_i - f_i h_j, written with potentials to stay finite
+            s_fwd = take(s.p, lo) - np.exp(take(s.log_f, lo) + take(s.log_h, hi))
+            s_bwd = take(s.p, hi) - np.exp(take(s.log_f, hi) + take(s.log_h, lo))
+            edge = scale * (bernoulli_derivative(beta * dphi) * s_fwd
+                            - bernoulli_derivative(-beta * dphi) * s_bwd)
+            take(c, lo)[...] -= edge
+            take(c, hi)[...] += edge
+        return self.pair(c)
+
+
+def _residual(p: np.ndarray, p_bar: np.ndarray, v: np.ndarray, v_bar: np.ndarray,
+              horizon: float, grid_dim: int) -> float:
+    axes = tuple(range(1, grid_dim + 1))
+    r_p = np.abs(p - p_bar).sum(axis=axes).max()
+    r_v = horizon * (p * np.abs(v - v_bar)).sum(axis=axes).max()
+    return float(r_p + r_v)
+
+
+def solve_bridge(
+    problem: BridgeProblem,
+    options: SolverOptions | None = None,
+    callback: Callable[[Iteration], None] | None = None,
+) -> BridgeResult:
+    """Compute the mean-field Schrödinger bridge of ``problem``.
+
+    Returns a :class:`~mfbridge.result.BridgeResult` whose ``status`` is ``"converged"`` or
+    ``"not_converged"`` (then a :class:`~mfbridge.errors.ConvergenceWarning` is also issued, with
+    the last residual). ``callback`` receives an :class:`Iteration` after every outer iteration.
+    """
+    options = options or SolverOptions()
+    with threadpool_limits(limits=1):
+        return _solve(problem, options, callback)
+
+
+def _solve(problem: BridgeProblem, options: SolverOptions,
+           callback: Callable[[Iteration], None] | None) -> BridgeResult:
+    start = time.perf_counter()
+    bridge = _Bridge(problem)
+    grid = problem.grid
+    route = options.route
+    if route == "auto":
+        route = "dense" if grid.size <= options.dense_max_cells else "operator"
+    inner = entropic.solve_dense if route == "dense" else entropic.solve_operator
+    mu, nu = problem.initial, problem.final
+    optimal = options.method == "optimal" and not bridge.pair.is_zero
+    interacting = not bridge.pair.is_zero
+
+    s = bridge.expand(problem.times / problem.horizon)
+    p_bar = (1 - s) * mu + s * nu
+    v_bar = np.zeros_like(p_bar)
+    log_b = np.zeros(grid.shape)
+    mixer = AndersonMixer(options.anderson, options.damping)
+    history: list[dict[str, float]] = []
+    inner_tol = options.sinkhorn_tol if not interacting else max(options.sinkhorn_tol, 1e-4)
+    status, residual, solved, ref = "not_converged", np.inf, None, None
+    solve_seconds = 0.0
+    it = 0
+    for it in range(1, options.max_iter + 1):  # noqa: B007 - reported after the loop
+        t0 = time.perf_counter()
+        ref = bridge.reference(p_bar, v_bar)
+        sol = inner(ref, mu, nu, log_b, tol=inner_tol, max_iter=options.sinkhorn_max_iter)
+        log_b = sol.log_b
+        solved = bridge.solved(sol, ref, v_bar)
+        v_new = bridge.correction(solved) if optimal else np.zeros_like(v_bar)
+        residual = (
+            _residual(solved.p, p_bar, v_new, v_bar, problem.horizon, grid.dim)
+            if interacting else 0.0
+        )
+        seconds = time.perf_counter() - t0
+        solve_seconds += seconds
+        record = Iteration(it, residual, sol.marginal_error, sol.iterations, seconds)
+        history.append({"residual": residual, "marginal_error": sol.marginal_error,
+                        "sinkhorn_iterations": float(sol.iterations), "seconds": seconds})
+        if callback is not None:
+            callback(record)
+        if not np.isfinite(residual) or not np.isfinite(sol.marginal_error):
+            status = "diverged"
+            break
+        if residual <= options.tol and sol.marginal_error <= max(options.tol, options.sinkhorn_tol):
+            status = "converged"
+            break
+        if not interacting:
+            if sol.marginal_error > options.sinkhorn_tol:
+                inner_tol = options.sinkhorn_tol
+                continue
+            break
+        inner_tol = max(options.sinkhorn_tol, min(1e-4, 1e-2 * residual))
+        if optimal:
+            x = np.concatenate([p_bar.ravel(), v_bar.ravel()])
+            gx = np.concatenate([solved.p.ravel(), v_new.ravel()])
+        else:
+            x, gx = p_bar.ravel(), solved.p.ravel()
+        x_next = mixer.next(x, gx)
+        p_bar = x_next[: p_bar.size].reshape(p_bar.shape)
+        if optimal:
+            v_bar = x_next[p_bar.size :].reshape(v_bar.shape)
+
+    assert solved is not None and ref is not None
+    if status == "converged":
+        message = (f"converged in {it} outer iterations: residual {residual:.2e}, "
+                   f"marginal error {solved.sol.marginal_error:.2e}")
+    else:
+        message = (f"{status.replace('_', ' ')} after {it} outer iterations: last residual "
+                   f"{residual:.2e} (tolerance {options.tol:.1e}), marginal error "
+                   f"{solved.sol.marginal_error:.2e}")
+        warnings.warn(ConvergenceWarning(message), stacklevel=3)
+    return _result(bridge, solved, ref, v_bar, options, route, status, message, it, residual,
+                   history, {"solve": solve_seconds, "total": time.perf_counter() - start})
+
+
+def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: np.ndarray,
+            options: SolverOptions, route: str, status: str, message: str, iterations: int,
+            residual: float, history: list[dict[str, float]], timings: dict[str, float]
+            ) -> BridgeResult:
+    problem = bridge.problem
+    grid = problem.grid
+    noise = problem.noise
+    mu, nu = problem.initial, problem.final
+    sol = s.sol
+    # J = KL(P | R) of the path measure against the self-consistent reference without the
+    # weight: <mu, log a/mu> + <nu, log b> + sum_k <p_k, log E_k>.
+    with np.errstate(divide="ignore", invalid="ignore"):
+        start_term = np.where(mu > 0, mu * (sol.log_a - np.log(mu)), 0.0).sum()
+        end_term = np.where(nu > 0, nu * sol.log_b, 0.0).sum()
+    weight_term = (s.p * ref.log_weights).sum()
+    cost = float(start_term + end_term + weight_term)
+    mean, cov = observables.moments(s.p, grid)
+    fe = observables.free_energy(s.p, grid, noise, bridge.confinement, bridge.pair)
+    fluxes = _net_fluxes(bridge, s)
+    kinetic = observables.transport_cost(fluxes, s.p, grid, bridge.omega, noise)
+    delta_f = float(fe[-1] - fe[0]) / noise**2
+    model = {
+        "confinement": _describe(problem.confinement),
+        "interaction": _describe(problem.interaction),
+    }
+    return BridgeResult(
+        grid=grid,
+        times=problem.times,
+        density=s.p / grid.cell_volume,
+        control=observables.control_field(s.log_h, grid, noise),
+        log_forward=s.log_f,
+        log_backward=s.log_h,
+        correction=v_bar,
+        mean=mean,
+        cov=cov,
+        free_energy=fe,
+        entropy=observables.entropy(s.p, grid),
+        cost=cost,
+        cost_kinetic=kinetic,
+        cost_drift=cost - kinetic - delta_f,
+        cost_free_energy=delta_f,
+        noise=noise,
+        method=options.method,
+        route=route,
+        status=status,
+        message=message,
+        iterations=iterations,
+        residual=residual,
+        marginal_error=sol.marginal_error,
+        history=history,
+        timings=timings,
+        model=model,
+        coupling=None if sol.coupling is None else sol.coupling.reshape(
+            *grid.shape, *grid.shape),
+    )
+
+
+def _net_fluxes(bridge: _Bridge, s: _Solved) -> tuple[np.ndarray, ...]:
+    """Net mass per unit time across each face for the controlled chain at each node.
+
+    Controlled rates are :math:`q_{ij}h_j/h_i`, so the flow i → j is
+    :math:`p_i q_{ij} h_j/h_i = q_{ij} f_i h_j`.
+    """
+    rates = edge_rates(s.phi, bridge.grid, bridge.problem.noise)
+    out = []
+    for a in range(bridge.grid.dim):
+        ax = 1 + a
+        n = bridge.shape[a]
+        lo = [slice(None)] * s.p.ndim
+        hi = [slice(None)] * s.p.ndim
+        lo[ax], hi[ax] = slice(0, n - 1), slice(1, n)
+        lo_t, hi_t = tuple(lo), tuple(hi)
+        fwd = rates.forward[a] * np.exp(s.log_f[lo_t] + s.log_h[hi_t])
+        bwd = rates.backward[a] * np.exp(s.log_f[hi_t] + s.log_h[lo_t])
+        out.append(fwd - bwd)
+    return tuple(out)
+
+
+def _describe(obj: object) -> dict[str, object]:
+    describe = getattr(obj, "describe", None)
+    return describe() if callable(describe) else {"repr": repr(obj)}

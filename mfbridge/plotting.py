@@ -1,0 +1,124 @@
+"""Figures of a bridge result (matplotlib; never imported by ``import mfbridge``).
+
+Everything is read from a :class:`~mfbridge.result.BridgeResult`, so a saved run can be plotted
+again with ``plot_result(mfbridge.load(folder), folder)``.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+
+from mfbridge.result import BridgeResult  # noqa: E402
+
+
+def _title(result: BridgeResult) -> str:
+    return (f"{result.method} bridge, σ = {result.noise:g}, T = {result.horizon:g}:  "
+            f"J = {result.cost:.5g}")
+
+
+def plot_density_1d(result: BridgeResult, path: Path) -> Path:
+    """Heat map of ρ(t, x) with the observed μ and ν drawn beside it, and the mean ± std."""
+    x = result.grid.axes[0]
+    t = result.times
+    fig, (ax_mu, ax, ax_nu) = plt.subplots(
+        1, 3, figsize=(10, 4.2), sharey=True, gridspec_kw={"width_ratios": [1, 4, 1]}
+    )
+    mesh = ax.pcolormesh(t, x, result.density.T, shading="auto", cmap="viridis")
+    mean = result.mean[:, 0]
+    std = np.sqrt(result.cov[:, 0, 0])
+    ax.plot(t, mean, color="white", lw=1.5, label="mean")
+    ax.plot(t, mean + std, color="white", lw=0.8, ls="--", label="mean ± std")
+    ax.plot(t, mean - std, color="white", lw=0.8, ls="--")
+    ax.set_xlabel("t")
+    ax.set_title(_title(result), fontsize=10)
+    ax.legend(loc="upper left", fontsize=8, framealpha=0.4)
+    for axis, k, label in ((ax_mu, 0, "μ (t = 0)"), (ax_nu, -1, "ν (t = T)")):
+        axis.fill_betweenx(x, result.density[k], color="tab:orange", alpha=0.6)
+        axis.set_xlabel(label)
+        axis.set_xlim(left=0)
+    ax_mu.invert_xaxis()
+    ax_mu.set_ylabel("x")
+    fig.colorbar(mesh, ax=ax_nu, label="density")
+    fig.tight_layout()
+    fig.savefig(path, dpi=120)
+    plt.close(fig)
+    return path
+
+
+def plot_density_2d(result: BridgeResult, path: Path, snapshots: int = 5) -> Path:
+    """Density snapshots at evenly spaced times, with the mean path drawn on each."""
+    grid = result.grid
+    ks = np.unique(np.linspace(0, len(result.times) - 1, snapshots).round().astype(int))
+    fig, axes = plt.subplots(1, len(ks), figsize=(3.0 * len(ks), 3.2), sharey=True)
+    extent = (grid.lower[0], grid.upper[0], grid.lower[1], grid.upper[1])
+    for ax, k in zip(np.atleast_1d(axes), ks, strict=True):
+        ax.imshow(result.density[k].T, origin="lower", extent=extent, cmap="viridis",
+                  aspect="equal")
+        ax.plot(result.mean[:, 0], result.mean[:, 1], color="white", lw=1)
+        ax.plot(*result.mean[k], "o", color="tab:red", ms=4)
+        ax.set_title(f"t = {result.times[k]:.3g}")
+        ax.set_xlabel("x₀")
+    np.atleast_1d(axes)[0].set_ylabel("x₁")
+    fig.suptitle(_title(result), fontsize=10)
+    fig.tight_layout()
+    fig.savefig(path, dpi=120)
+    plt.close(fig)
+    return path
+
+
+def plot_moments(result: BridgeResult, path: Path) -> Path:
+    """Mean ± std per axis, and free energy along t."""
+    fig, (ax, ax_f) = plt.subplots(1, 2, figsize=(9, 3.5))
+    t = result.times
+    for a in range(result.grid.dim):
+        mean = result.mean[:, a]
+        std = np.sqrt(result.cov[:, a, a])
+        line, = ax.plot(t, mean, label=f"mean x{a}" if result.grid.dim > 1 else "mean")
+        ax.fill_between(t, mean - std, mean + std, color=line.get_color(), alpha=0.25)
+    ax.set_xlabel("t")
+    ax.set_ylabel("position (mean ± std)")
+    ax.legend(fontsize=8)
+    ax_f.plot(t, result.free_energy)
+    ax_f.set_xlabel("t")
+    ax_f.set_ylabel("free energy F(ρ_t)")
+    fig.suptitle(_title(result), fontsize=10)
+    fig.tight_layout()
+    fig.savefig(path, dpi=120)
+    plt.close(fig)
+    return path
+
+
+def plot_convergence(result: BridgeResult, path: Path) -> Path:
+    """Self-consistency residual and marginal error against the outer iteration."""
+    fig, ax = plt.subplots(figsize=(5, 3.5))
+    it = np.arange(1, len(result.history) + 1)
+    ax.semilogy(it, [h["residual"] or np.nan for h in result.history], "o-", label="residual")
+    ax.semilogy(it, [h["marginal_error"] for h in result.history], "s-", label="marginal error")
+    ax.set_xlabel("outer iteration")
+    ax.legend()
+    ax.set_title(result.message, fontsize=8)
+    fig.tight_layout()
+    fig.savefig(path, dpi=120)
+    plt.close(fig)
+    return path
+
+
+def plot_result(result: BridgeResult, directory: str | Path) -> list[Path]:
+    """Write the standard figures of ``result`` into ``directory``; returns their paths."""
+    out = Path(directory)
+    out.mkdir(parents=True, exist_ok=True)
+    if result.grid.dim == 1:
+        paths = [plot_density_1d(result, out / "density.png")]
+    elif result.grid.dim == 2:
+        paths = [plot_density_2d(result, out / "density.png")]
+    else:
+        paths = []
+    paths.append(plot_moments(result, out / "moments.png"))
+    paths.append(plot_convergence(result, out / "convergence.png"))
+    return paths

@@ -1,0 +1,67 @@
+"""The bridge problem: everything the model and the observations fix, validated up front."""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+import numpy as np
+
+from mfbridge.endpoints import endpoint_masses
+from mfbridge.errors import InputError
+from mfbridge.grid import Grid
+from mfbridge.potentials import Confinement, Interaction, NoConfinement, NoInteraction
+
+
+@dataclass(frozen=True)
+class BridgeProblem:
+    r"""Find the most likely flow from ``initial`` (t = 0) to ``final`` (t = ``horizon``).
+
+    Model: :math:`dX^i = [-\nabla U(X^i) - \frac1N\sum_j \nabla W(X^i - X^j)]\,dt + \sigma dB^i`
+    with U = ``confinement``, W = ``interaction``, σ = ``noise`` (units: length/√time).
+    ``initial`` and ``final`` are endpoint objects or arrays of densities/masses of shape
+    ``grid.shape``; they are stored as normalised cell masses. ``steps`` is the number K of time
+    steps of the grid in time.
+    """
+
+    grid: Grid
+    initial: np.ndarray
+    final: np.ndarray
+    noise: float
+    horizon: float = 1.0
+    steps: int = 100
+    confinement: Confinement = field(default_factory=NoConfinement)
+    interaction: Interaction = field(default_factory=NoInteraction)
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.grid, Grid):
+            raise InputError(f"grid must be a mfbridge.grid.Grid, got {type(self.grid).__name__}")
+        for name, value in (("noise", self.noise), ("horizon", self.horizon)):
+            if isinstance(value, bool) or not isinstance(value, (int, float, np.floating, np.integer)):
+                raise InputError(f"{name} must be a positive number, got {value!r}")
+            if not (math.isfinite(value) and value > 0):
+                raise InputError(f"{name} must be a positive finite number, got {value!r}")
+        object.__setattr__(self, "noise", float(self.noise))
+        object.__setattr__(self, "horizon", float(self.horizon))
+        steps = self.steps
+        if isinstance(steps, bool) or not isinstance(steps, (int, np.integer)) or steps < 1:
+            raise InputError(f"steps must be a positive integer, got {steps!r}")
+        object.__setattr__(self, "steps", int(steps))
+        if not isinstance(self.confinement, Confinement):
+            raise InputError(
+                f"confinement must be a mfbridge.potentials.Confinement, got {self.confinement!r}"
+            )
+        if not isinstance(self.interaction, Interaction):
+            raise InputError(
+                f"interaction must be a mfbridge.potentials.Interaction, got {self.interaction!r}"
+            )
+        for name in ("initial", "final"):
+            object.__setattr__(self, name, endpoint_masses(getattr(self, name), self.grid, name))
+
+    @property
+    def times(self) -> np.ndarray:
+        """Time nodes :math:`t_k = kT/K`, shape (K+1,)."""
+        return np.linspace(0.0, self.horizon, self.steps + 1)
+
+    @property
+    def dt(self) -> float:
+        return self.horizon / self.steps

@@ -1,0 +1,137 @@
+r"""Exact-in-time propagation of the reference chain: the action of :math:`e^{\tau Q}` on vectors.
+
+Over one time step the generator :math:`Q` of :mod:`mfbridge.reference` is frozen, and the step
+operator is the matrix exponential :math:`M = e^{\tau Q}` (a stochastic matrix). Its action is
+never formed densely. Because the chain is reversible, the spectrum of :math:`\tau Q` lies in
+:math:`(-\infty, 0]`, where the exponential is approximated uniformly by the trapezoid rule on
+Talbot's cotangent contour (Trefethen, Weideman & Schmelzer, "Talbot quadratures and rational
+approximations", BIT 46, 2006):
+
+.. math::
+
+    e^{\tau Q} v \approx 2\,\mathrm{Re} \sum_{k=1}^{N/2} c_k (z_k I - \tau Q)^{-1} v ,
+
+with poles :math:`z_k` and weights :math:`c_k` given below. With N = 24 the uniform error on
+:math:`(-\infty, 0]` is 2e-14 (measured in ``tests/test_propagator.py``). Each term is one
+tridiagonal solve per grid line (O(n) work).
+
+In several dimensions the generator is a sum of one-axis generators, each reversible for the same
+:math:`\pi`; the step uses Strang's symmetric splitting
+:math:`e^{\tau Q} \approx e^{\tau Q_0/2} \cdots e^{\tau Q_{d-1}} \cdots e^{\tau Q_0/2}`
+(second order in τ, exact when the axis parts commute, e.g. separable potentials), which keeps
+every factor stochastic and :math:`\pi`-invariant.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.linalg import lapack
+
+from mfbridge.reference import EdgeRates
+
+
+def _talbot_contour(n_points: int) -> tuple[np.ndarray, np.ndarray]:
+    """Poles and weights of the upper half of the cotangent contour with ``n_points`` nodes."""
+    theta = -np.pi + (np.arange(1, n_points + 1) - 0.5) * 2.0 * np.pi / n_points
+    theta = theta[theta > 0]
+    z = n_points * (0.5017 * theta / np.tan(0.6407 * theta) - 0.6122 + 0.2645j * theta)
+    dz = n_points * (
+        0.5017 / np.tan(0.6407 * theta)
+        - 0.5017 * 0.6407 * theta / np.sin(0.6407 * theta) ** 2
+        + 0.2645j
+    )
+    weights = (2.0 * np.pi / n_points) * np.exp(z) * dz / (2j * np.pi)
+    return z, weights
+
+
+CONTOUR_POINTS = 20
+_POLES, _WEIGHTS = _talbot_contour(CONTOUR_POINTS)
+_WEIGHTS2 = 2.0 * _WEIGHTS  # conjugate pairs: e^A v = 2 Re sum_k c_k (z_k - A)^{-1} v
+
+
+def scalar_exp(x: np.ndarray) -> np.ndarray:
+    """The rational approximation applied to real numbers x ≤ 0 (for testing its accuracy)."""
+    x = np.asarray(x, dtype=float)[..., None]
+    return 2.0 * np.real(np.sum(_WEIGHTS / (_POLES - x), axis=-1))
+
+
+class AxisStep:
+    """:math:`e^{\\tau Q_a}` for the part of the generator along one axis.
+
+    ``up`` and ``down`` are the rates :math:`q_{i\\to i+1}`, :math:`q_{i+1\\to i}` along axis
+    ``axis``, moved to the last position and flattened into lines: shape (lines, n - 1).
+    The shifted systems :math:`z_k I - \\tau Q_a` of all poles and all lines are stacked into one
+    tridiagonal matrix (zero couplings between blocks), LU-factorised once and reused for both
+    :math:`M v` and :math:`M^\\top v`.
+    """
+
+    def __init__(self, axis: int, tau: float, up: np.ndarray, down: np.ndarray) -> None:
+        self.axis = axis
+        lines, m = up.shape
+        n = m + 1
+        upp = np.zeros((lines, n))
+        dwn = np.zeros((lines, n))
+        upp[:, :-1] = tau * up
+        dwn[:, :-1] = tau * down
+        exit_rate = upp.copy()
+        exit_rate[:, 1:] += dwn[:, :-1]
+        poles = len(_POLES)
+        diag = (_POLES[:, None, None] + exit_rate[None]).ravel()
+        sup = -np.broadcast_to(upp, (poles, lines, n)).ravel()[:-1].astype(complex)
+        sub = -np.broadcast_to(dwn, (poles, lines, n)).ravel()[:-1].astype(complex)
+        # row i of Q has +q_{i->i+1} on the super-diagonal and +q_{i->i-1} on the sub-diagonal
+        *self._lu, info = lapack.zgttrf(sub, diag, sup)
+        if info != 0:  # pragma: no cover - z_k I - tau Q is never singular for Im z_k > 0
+            raise np.linalg.LinAlgError(f"tridiagonal factorisation failed (info={info})")
+
+    def apply(self, values: np.ndarray, transpose: bool) -> np.ndarray:
+        """Apply to ``values`` of shape (*spatial_shape, batch)."""
+        batch = values.shape[-1]
+        moved = np.moveaxis(values, self.axis, -2) if self.axis != values.ndim - 2 else values
+        rhs = np.empty((len(_POLES), moved.size // batch, batch), dtype=complex)
+        rhs[...] = moved.reshape(-1, batch)
+        x, info = lapack.zgttrs(*self._lu, rhs.reshape(-1, batch), trans="T" if transpose else "N",
+                                overwrite_b=True)
+        if info != 0:  # pragma: no cover
+            raise np.linalg.LinAlgError(f"tridiagonal solve failed (info={info})")
+        out = (_WEIGHTS2 @ x.reshape(len(_POLES), -1)).real.reshape(moved.shape)
+        return np.moveaxis(out, -2, self.axis) if moved is not values else out
+
+
+class StepOperator:
+    r"""One time step :math:`M \approx e^{\tau Q}` of the reference chain.
+
+    ``apply(g)`` computes :math:`M g` (backward: expectations of a function at the end of the
+    step), ``apply_transpose(p)`` computes :math:`M^\top p` (forward: law at the end of the step).
+    Inputs have shape ``spatial_shape`` or ``(*spatial_shape, batch)``.
+    """
+
+    def __init__(self, rates: EdgeRates, tau: float, spatial_shape: tuple[int, ...]) -> None:
+        self.shape = tuple(spatial_shape)
+        dim = len(self.shape)
+        steps: list[AxisStep] = []
+
+        def axis_step(a: int, t: float) -> AxisStep:
+            up = np.moveaxis(rates.forward[a], a, -1).reshape(-1, self.shape[a] - 1)
+            down = np.moveaxis(rates.backward[a], a, -1).reshape(-1, self.shape[a] - 1)
+            return AxisStep(a, t, up, down)
+
+        if dim == 1:
+            steps = [axis_step(0, tau)]
+        else:
+            half = [axis_step(a, tau / 2) for a in range(dim - 1)]
+            steps = [*half, axis_step(dim - 1, tau), *reversed(half)]
+        self._steps = steps
+
+    def _run(self, values: np.ndarray, transpose: bool) -> np.ndarray:
+        flat = values.ndim == len(self.shape)
+        out = values[..., None] if flat else values
+        for step in self._steps:
+            out = step.apply(out, transpose)
+        return out[..., 0] if flat else out
+
+    def apply(self, values: np.ndarray) -> np.ndarray:
+        return self._run(values, transpose=False)
+
+    def apply_transpose(self, values: np.ndarray) -> np.ndarray:
+        return self._run(values, transpose=True)

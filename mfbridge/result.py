@@ -1,0 +1,238 @@
+"""The result of a bridge computation: one self-describing object, saved as labelled arrays.
+
+A run folder holds ``result.nc`` (netCDF, opened by ``xarray.open_dataset``) with every array
+labelled by its coordinates (``t``, ``x``/``x0``, ``x1``..., ``dim``), and ``summary.json`` with
+the scalar numbers a reader wants first (cost and its parts, convergence, timings, model).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from mfbridge.errors import InputError
+from mfbridge.grid import Grid
+
+FORMAT_VERSION = 1
+RESULT_FILE = "result.nc"
+SUMMARY_FILE = "summary.json"
+
+
+@dataclass
+class BridgeResult:
+    r"""The mean-field Schrödinger bridge on a grid.
+
+    Arrays over time have leading length K+1 (``times``); spatial axes follow ``grid.shape``.
+
+    * ``density``: :math:`\rho_t` (1/length^d), shape (K+1, *grid.shape);
+    * ``control``: :math:`u_t = \sigma^2\nabla\psi_t` (length/time), shape (K+1, *grid.shape, d);
+    * ``log_forward``, ``log_backward``: Schrödinger potentials :math:`\log\hat\varphi_t`,
+      :math:`\psi_t = \log\varphi_t` with :math:`\rho_t\,\mathrm{vol} = \hat\varphi_t\varphi_t`;
+    * ``correction``: the potential :math:`V_t` that makes the frozen-reference bridge the
+      minimiser of J (zero for the ``frozen`` method);
+    * ``cost``: J (dimensionless, per particle) = ``cost_kinetic`` + ``cost_drift`` +
+      ``cost_free_energy``, with :math:`\frac{1}{2\sigma^2}\iint|v|^2\rho`,
+      :math:`\frac{1}{2\sigma^2}\iint|b|^2\rho` and :math:`(F(\nu) - F(\mu))/\sigma^2`;
+    * ``mean`` (K+1, d), ``cov`` (K+1, d, d), ``free_energy`` and ``entropy`` (K+1,).
+    """
+
+    grid: Grid
+    times: np.ndarray
+    density: np.ndarray
+    control: np.ndarray
+    log_forward: np.ndarray
+    log_backward: np.ndarray
+    correction: np.ndarray
+    mean: np.ndarray
+    cov: np.ndarray
+    free_energy: np.ndarray
+    entropy: np.ndarray
+    cost: float
+    cost_kinetic: float
+    cost_drift: float
+    cost_free_energy: float
+    noise: float
+    method: str
+    route: str
+    status: str
+    message: str
+    iterations: int
+    residual: float
+    marginal_error: float
+    history: list[dict[str, float]] = field(default_factory=list)
+    timings: dict[str, float] = field(default_factory=dict)
+    model: dict[str, Any] = field(default_factory=dict)
+    config: dict[str, Any] | None = None
+    coupling: np.ndarray | None = None
+
+    @property
+    def converged(self) -> bool:
+        return self.status == "converged"
+
+    @property
+    def horizon(self) -> float:
+        return float(self.times[-1])
+
+    @property
+    def masses(self) -> np.ndarray:
+        """Cell masses, shape (K+1, *grid.shape); each slice sums to 1."""
+        return self.density * self.grid.cell_volume
+
+    def summary(self) -> dict[str, Any]:
+        """The scalar record written to ``summary.json``."""
+        return {
+            "format_version": FORMAT_VERSION,
+            "cost": self.cost,
+            "cost_kinetic": self.cost_kinetic,
+            "cost_drift": self.cost_drift,
+            "cost_free_energy": self.cost_free_energy,
+            "status": self.status,
+            "message": self.message,
+            "iterations": self.iterations,
+            "residual": self.residual,
+            "marginal_error": self.marginal_error,
+            "method": self.method,
+            "route": self.route,
+            "noise": self.noise,
+            "horizon": self.horizon,
+            "steps": len(self.times) - 1,
+            "grid": {"lower": list(self.grid.lower), "upper": list(self.grid.upper),
+                     "shape": list(self.grid.shape)},
+            "model": self.model,
+            "timings": self.timings,
+        }
+
+    # ------------------------------------------------------------------ labelled arrays
+    def _space_dims(self) -> list[str]:
+        return ["x"] if self.grid.dim == 1 else [f"x{a}" for a in range(self.grid.dim)]
+
+    def to_dataset(self) -> Any:
+        """The result as an ``xarray.Dataset`` (coordinates t, x or x0/x1..., dim)."""
+        import xarray as xr
+
+        space = self._space_dims()
+        coords: dict[str, Any] = {"t": self.times, "dim": np.arange(self.grid.dim)}
+        coords.update({name: axis for name, axis in zip(space, self.grid.axes, strict=True)})
+        field_dims = ["t", *space]
+        data = {
+            "density": (field_dims, self.density, {"units": "1/length^d"}),
+            "control": ([*field_dims, "dim"], self.control, {"units": "length/time"}),
+            "log_forward": (field_dims, self.log_forward, {}),
+            "log_backward": (field_dims, self.log_backward, {}),
+            "correction": (field_dims, self.correction, {}),
+            "mean": (["t", "dim"], self.mean, {}),
+            "cov": (["t", "dim", "dim_"], self.cov, {}),
+            "free_energy": (["t"], self.free_energy, {}),
+            "entropy": (["t"], self.entropy, {}),
+        }
+        if self.coupling is not None:
+            data["coupling"] = (["cell_0", "cell_T"], self.coupling, {})
+        hist_keys = sorted({k for row in self.history for k in row})
+        if self.history:
+            coords["iteration"] = np.arange(1, len(self.history) + 1)
+            for key in hist_keys:
+                values = [row.get(key, np.nan) for row in self.history]
+                data[f"history_{key}"] = (["iteration"], np.asarray(values, dtype=float), {})
+        variables = {k: xr.Variable(d, np.asarray(v), attrs=a) for k, (d, v, a) in data.items()}
+        attrs = {"summary": json.dumps(self.summary()), "config": json.dumps(self.config)}
+        return xr.Dataset(variables, coords=coords, attrs=attrs)
+
+    def save(self, directory: str | os.PathLike[str]) -> Path:
+        """Write ``result.nc`` and ``summary.json`` into ``directory`` (created if needed).
+
+        Each file is written to a temporary name and renamed, so an interrupted save never leaves
+        a complete-looking but partial result. Returns the directory.
+        """
+        out = Path(directory)
+        out.mkdir(parents=True, exist_ok=True)
+        dataset = self.to_dataset()
+        _atomic_write(out / RESULT_FILE, lambda tmp: dataset.to_netcdf(tmp, engine="netcdf4"))
+        text = json.dumps(self.summary(), indent=2, default=_json_default)
+        _atomic_write(out / SUMMARY_FILE, lambda tmp: Path(tmp).write_text(text + "\n"))
+        return out
+
+
+def _json_default(value: Any) -> Any:
+    if isinstance(value, (np.floating, np.integer)):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    return str(value)
+
+
+def _atomic_write(target: Path, write: Any) -> None:
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", dir=target.parent)
+    os.close(fd)
+    try:
+        write(tmp)
+        os.replace(tmp, target)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def load(directory: str | os.PathLike[str]) -> BridgeResult:
+    """Read a result written by :meth:`BridgeResult.save` back into a :class:`BridgeResult`."""
+    import xarray as xr
+
+    folder = Path(directory)
+    path = folder / RESULT_FILE
+    if not folder.is_dir():
+        raise InputError(f"no run folder at {folder}")
+    if not path.is_file():
+        raise InputError(f"{folder} holds no {RESULT_FILE}: not a complete mfbridge result")
+    try:
+        with xr.open_dataset(path, engine="netcdf4") as ds:
+            ds = ds.load()
+    except Exception as exc:  # noqa: BLE001 - any reader failure means a damaged file
+        raise InputError(f"cannot read {path}: {exc}") from exc
+    summary = json.loads(ds.attrs["summary"])
+    if summary.get("format_version") != FORMAT_VERSION:
+        raise InputError(
+            f"{path} has format version {summary.get('format_version')}, this mfbridge reads "
+            f"version {FORMAT_VERSION}"
+        )
+    g = summary["grid"]
+    grid = Grid(lower=tuple(g["lower"]), upper=tuple(g["upper"]), shape=tuple(g["shape"]))
+    history = []
+    hist_vars = [k for k in ds.data_vars if k.startswith("history_")]
+    if hist_vars:
+        for i in range(ds.sizes["iteration"]):
+            history.append({k[len("history_"):]: float(ds[k].values[i]) for k in hist_vars})
+    config = json.loads(ds.attrs.get("config", "null"))
+    return BridgeResult(
+        grid=grid,
+        times=ds["t"].values,
+        density=ds["density"].values,
+        control=ds["control"].values,
+        log_forward=ds["log_forward"].values,
+        log_backward=ds["log_backward"].values,
+        correction=ds["correction"].values,
+        mean=ds["mean"].values,
+        cov=ds["cov"].values,
+        free_energy=ds["free_energy"].values,
+        entropy=ds["entropy"].values,
+        cost=summary["cost"],
+        cost_kinetic=summary["cost_kinetic"],
+        cost_drift=summary["cost_drift"],
+        cost_free_energy=summary["cost_free_energy"],
+        noise=summary["noise"],
+        method=summary["method"],
+        route=summary["route"],
+        status=summary["status"],
+        message=summary["message"],
+        iterations=summary["iterations"],
+        residual=summary["residual"],
+        marginal_error=summary["marginal_error"],
+        history=history,
+        timings=summary["timings"],
+        model=summary["model"],
+        config=config,
+        coupling=ds["coupling"].values if "coupling" in ds else None,
+    )
