@@ -166,10 +166,18 @@ def _json_default(value: Any) -> Any:
     return str(value)
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def _atomic_write(target: Path, write: Any) -> None:
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", dir=target.parent)
     os.close(fd)
     try:
+        # mkstemp creates the file private (0600); give the result the usual permissions
+        os.chmod(tmp, 0o666 & ~_umask())
         write(tmp)
         os.replace(tmp, target)
     except BaseException:
@@ -192,12 +200,22 @@ def load(directory: str | os.PathLike[str]) -> BridgeResult:
             ds = ds.load()
     except Exception as exc:  # noqa: BLE001 - any reader failure means a damaged file
         raise InputError(f"cannot read {path}: {exc}") from exc
-    summary = json.loads(ds.attrs["summary"])
-    if summary.get("format_version") != FORMAT_VERSION:
+    try:
+        summary = json.loads(ds.attrs["summary"])
+    except (KeyError, TypeError, ValueError) as exc:
+        raise InputError(f"{path} has no valid mfbridge summary: not an mfbridge result") from exc
+    version = summary.get("format_version") if isinstance(summary, dict) else None
+    if version != FORMAT_VERSION:
         raise InputError(
-            f"{path} has format version {summary.get('format_version')}, this mfbridge reads "
-            f"version {FORMAT_VERSION}"
+            f"{path} has format version {version}, this mfbridge reads version {FORMAT_VERSION}"
         )
+    try:
+        return _from_dataset(ds, summary)
+    except (KeyError, TypeError, ValueError) as exc:
+        raise InputError(f"{path} is not a complete mfbridge result: missing or bad {exc}") from exc
+
+
+def _from_dataset(ds: Any, summary: dict[str, Any]) -> BridgeResult:
     g = summary["grid"]
     grid = Grid(lower=tuple(g["lower"]), upper=tuple(g["upper"]), shape=tuple(g["shape"]))
     history = []
