@@ -57,15 +57,17 @@ def control_field(log_h: np.ndarray, grid: Grid, noise: float) -> np.ndarray:
     return noise**2 * np.stack(grads, axis=-1)
 
 
-def transport_cost(
+def flux_action(
     net_flux: tuple[np.ndarray, ...], p: np.ndarray, grid: Grid, weights: np.ndarray, noise: float
 ) -> float:
-    r"""Kinetic part :math:`\frac{1}{2\sigma^2}\int_0^T\!\!\int |v|^2\rho\,dx\,dt` of the cost.
+    r""":math:`\frac{1}{2\sigma^2}\int_0^T\!\!\int |w|^2\rho\,dx\,dt` for the velocity field w
+    whose mass flux :math:`w\rho` is ``net_flux``.
 
     ``net_flux[a]`` is the mass per unit time crossing each face along axis a (shape
-    (K+1, *grid.shape) with axis a one shorter); on a face, :math:`\int|v_a|^2\rho \approx
+    (K+1, *grid.shape) with axis a one shorter); on a face, :math:`\int|w_a|^2\rho \approx
     j^2 h_a^2 / \bar p` with :math:`\bar p` the mean mass of the two cells; ``weights`` are the
-    trapezoid weights in time, shape (K+1,).
+    trapezoid weights in time, shape (K+1,). With the flux of the bridge this is the kinetic part
+    of the cost; with the flux of the control (bridge minus reference) it is J itself.
     """
     total = np.zeros(p.shape[0])
     for a, j in enumerate(net_flux):
