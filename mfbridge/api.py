@@ -49,7 +49,7 @@ def _build(cfg: Any, group: str) -> Any:
         return instantiate(cfg[group])
     except InputError:
         raise
-    except Exception as exc:  # noqa: BLE001 - hydra wraps constructor errors; report the cause
+    except Exception as exc:
         cause = exc.__cause__ or exc
         raise InputError(f"config group {group!r}: {cause}") from exc
 

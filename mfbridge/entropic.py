@@ -104,7 +104,8 @@ def forward_sweep(ref: FrozenReference, log_a: np.ndarray) -> np.ndarray:
     log_f = np.empty((k_steps + 1, *log_a.shape))
     log_f[0] = log_a
     for k in range(1, k_steps + 1):
-        log_f[k] = _log_apply(ref.steps[k - 1].apply_transpose, log_f[k - 1] + ref.log_weights[k - 1])
+        weighted = log_f[k - 1] + ref.log_weights[k - 1]
+        log_f[k] = _log_apply(ref.steps[k - 1].apply_transpose, weighted)
     return log_f
 
 

@@ -20,7 +20,8 @@ its derivative in the rates' argument is
 
 .. math::
 
-    V(y) = \sum_{i \to j} \rho_i \Bigl(1 - \frac{h_j}{h_i}\Bigr) \frac{\partial q_{ij}}{\partial \rho_y}
+    V(y) = \sum_{i \to j} \rho_i \Bigl(1 - \frac{h_j}{h_i}\Bigr)
+           \frac{\partial q_{ij}}{\partial \rho_y}
          = \sum_x W(x - y)\, c(x),
 
 where :math:`c` collects, edge by edge, :math:`\rho_i(1 - h_j/h_i)\,\partial q_{ij}/\partial\Phi_j`
@@ -47,7 +48,7 @@ from mfbridge.anderson import AndersonMixer
 from mfbridge.errors import ConvergenceWarning, InputError, unknown_name
 from mfbridge.problem import BridgeProblem
 from mfbridge.propagator import StepOperator
-from mfbridge.reference import PairField, bernoulli_derivative, edge_rates
+from mfbridge.reference import EdgeRates, PairField, bernoulli_derivative, edge_rates
 from mfbridge.result import BridgeResult
 
 METHODS = ("optimal", "frozen")
@@ -98,7 +99,8 @@ class SolverOptions:
         ]
         for name, ok in checks:
             if not ok:
-                raise InputError(f"solver option {name} has an invalid value {getattr(self, name)!r}")
+                value = getattr(self, name)
+                raise InputError(f"solver option {name} has an invalid value {value!r}")
 
 
 @dataclass(frozen=True)
@@ -158,7 +160,8 @@ class _Bridge:
         rates = edge_rates(phi_mid, self.grid, self.problem.noise)
         steps = []
         for k in range(self.k_steps):
-            rk = type(rates)(tuple(r[k] for r in rates.forward), tuple(r[k] for r in rates.backward))
+            rk = EdgeRates(tuple(r[k] for r in rates.forward),
+                           tuple(r[k] for r in rates.backward))
             steps.append(StepOperator(rk, self.dt, self.shape))
         return entropic.FrozenReference(steps, -self.expand(self.omega) * v_bar)
 
@@ -245,7 +248,7 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
     status, residual, solved, ref = "not_converged", np.inf, None, None
     solve_seconds = 0.0
     it = 0
-    for it in range(1, options.max_iter + 1):  # noqa: B007 - reported after the loop
+    for it in range(1, options.max_iter + 1):
         t0 = time.perf_counter()
         ref = bridge.reference(p_bar, v_bar)
         sol = inner(ref, mu, nu, log_b, tol=inner_tol, max_iter=options.sinkhorn_max_iter)
@@ -305,7 +308,6 @@ def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: n
     problem = bridge.problem
     grid = problem.grid
     noise = problem.noise
-    mu, nu = problem.initial, problem.final
     sol = s.sol
     # J evaluated on the flow: (1/2 sigma^2) int int |u|^2 rho, with u rho the net flux of the
     # bridge minus that of the reference at the same density (Scharfetter-Gummel fluxes). The

@@ -11,10 +11,10 @@ from pathlib import Path
 import matplotlib
 
 matplotlib.use("Agg")
-import matplotlib.pyplot as plt  # noqa: E402
-import numpy as np  # noqa: E402
+import matplotlib.pyplot as plt
+import numpy as np
 
-from mfbridge.result import BridgeResult  # noqa: E402
+from mfbridge.result import BridgeResult
 
 
 def _title(result: BridgeResult) -> str:

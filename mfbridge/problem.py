@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+
 import numpy as np
 
 from mfbridge.endpoints import endpoint_masses
@@ -36,7 +37,8 @@ class BridgeProblem:
         if not isinstance(self.grid, Grid):
             raise InputError(f"grid must be a mfbridge.grid.Grid, got {type(self.grid).__name__}")
         for name, value in (("noise", self.noise), ("horizon", self.horizon)):
-            if isinstance(value, bool) or not isinstance(value, (int, float, np.floating, np.integer)):
+            numeric = isinstance(value, (int, float, np.floating, np.integer))
+            if isinstance(value, bool) or not numeric:
                 raise InputError(f"{name} must be a positive number, got {value!r}")
             if not (math.isfinite(value) and value > 0):
                 raise InputError(f"{name} must be a positive finite number, got {value!r}")

@@ -25,11 +25,11 @@ edge arrays along axis ``a`` have that axis one shorter.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 import scipy.fft
 
-from typing import TYPE_CHECKING
 if TYPE_CHECKING:
     from mfbridge.grid import Grid
     from mfbridge.potentials import Interaction
@@ -90,7 +90,7 @@ class EdgeRates:
 
 
 def potential_differences(phi: np.ndarray, grid: Grid) -> tuple[np.ndarray, ...]:
-    """:math:`\\Phi_{i+1} - \\Phi_i` along each grid axis; ``phi`` has shape (*batch, *grid.shape)."""
+    """:math:`\\Phi_{i+1} - \\Phi_i` along each axis; ``phi`` has shape (*batch, *grid.shape)."""
     nb = phi.ndim - grid.dim
     return tuple(np.diff(phi, axis=nb + a) for a in range(grid.dim))
 
@@ -108,7 +108,7 @@ def edge_rates(phi: np.ndarray, grid: Grid, noise: float) -> EdgeRates:
 
 
 class PairField:
-    """Discrete convolution with a pair potential: :math:`(W \\star p)_i = \\sum_j W(x_i - x_j) p_j`.
+    """Discrete convolution with a pair potential, :math:`(W\\star p)_i = \\sum_j W(x_i - x_j)p_j`.
 
     ``p`` holds cell masses (shape (*batch, *grid.shape)); the result has the same shape and the
     units of W. Computed by FFT with the table of W on all cell offsets, O(n log n) per field.
@@ -118,7 +118,8 @@ class PairField:
     def __init__(self, grid: Grid, interaction: Interaction) -> None:
         self.grid = grid
         self.is_zero = bool(getattr(interaction, "is_zero", False))
-        offsets = [np.arange(-(n - 1), n) * h for n, h in zip(grid.shape, grid.spacing, strict=True)]
+        offsets = [np.arange(-(n - 1), n) * h
+                   for n, h in zip(grid.shape, grid.spacing, strict=True)]
         mesh = np.stack(np.meshgrid(*offsets, indexing="ij"), axis=-1)
         table = np.asarray(interaction.value(mesh), dtype=float)
         if not np.all(np.isfinite(table)):

@@ -198,7 +198,7 @@ def load(directory: str | os.PathLike[str]) -> BridgeResult:
     try:
         with xr.open_dataset(path, engine="netcdf4") as ds:
             ds = ds.load()
-    except Exception as exc:  # noqa: BLE001 - any reader failure means a damaged file
+    except Exception as exc:
         raise InputError(f"cannot read {path}: {exc}") from exc
     try:
         summary = json.loads(ds.attrs["summary"])

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import math
 import subprocess
 import sys
@@ -85,11 +86,11 @@ def test_every_option_composes_and_builds(group: str, option: str) -> None:
     assert isinstance(options, SolverOptions)
 
 
-@pytest.mark.parametrize("group", GROUPS)
-def test_group_default_is_an_option_on_disk(group: str) -> None:
-    default_cfg = compose()
-    option_cfgs = [compose([f"{group}={opt}"])[group] for opt in _options(group)]
-    assert default_cfg[group] in option_cfgs
+def test_default_solver_config_matches_python_defaults() -> None:
+    """The command line and ``solve_bridge(problem)`` use the same solver settings by default."""
+    assert instantiate(compose().solver) == SolverOptions()
+    frozen = instantiate(compose(["solver=frozen"]).solver)
+    assert frozen == dataclasses.replace(SolverOptions(), method="frozen")
 
 
 def test_linear_quadratic_case_by_overrides() -> None:

@@ -342,17 +342,54 @@ def test_cli_run_without_figures(tmp_path: Path, tiny_overrides: tuple[str, ...]
 # --------------------------------------------------------------------------- console script
 
 
-def _console(args: list[str], cwd: Path) -> subprocess.CompletedProcess[str]:
+@dataclasses.dataclass
+class Console:
+    """One invocation of the ``mfbridge`` console script: its working directory, run folder,
+    exit code and merged stdout + stderr."""
+
+    cwd: Path
+    folder: Path
+    returncode: int
+    output: str
+
+
+CONSOLE_CASES: dict[str, list[str]] = {
+    "ok": ["grid.shape=32", "steps=8"],
+    "unknown_option": ["interaction=nope"],
+    "bad_value": ["grid.shape=32", "noise=-1"],
+}
+
+
+@pytest.fixture(scope="module")
+def console(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Console]:
+    """Run every case of CONSOLE_CASES as a subprocess, all at once (each pays the import)."""
     assert CONSOLE_SCRIPT.is_file(), f"console script not installed at {CONSOLE_SCRIPT}"
     env = {k: v for k, v in os.environ.items() if k != "HYDRA_FULL_ERROR"}
-    return subprocess.run([str(CONSOLE_SCRIPT), *args], cwd=cwd, capture_output=True,
-                          text=True, env=env, timeout=300)
+    started: dict[str, tuple[Path, subprocess.Popen[str]]] = {}
+    out: dict[str, Console] = {}
+    try:
+        for name, args in CONSOLE_CASES.items():
+            cwd = tmp_path_factory.mktemp(f"console_{name}")
+            command = [str(CONSOLE_SCRIPT), *args, f"hydra.run.dir={cwd / 'run'}"]
+            started[name] = (cwd, subprocess.Popen(
+                command, cwd=cwd, env=env, text=True,
+                stdout=subprocess.PIPE, stderr=subprocess.STDOUT,
+            ))
+        for name, (cwd, proc) in started.items():
+            output, _ = proc.communicate(timeout=300)
+            out[name] = Console(cwd, cwd / "run", proc.returncode, output)
+    finally:
+        for _, proc in started.values():
+            if proc.poll() is None:
+                proc.kill()
+                proc.wait()
+    return out
 
 
-def test_console_script_writes_a_run_folder(tmp_path: Path) -> None:
-    folder = tmp_path / "run"
-    proc = _console(["grid.shape=32", "steps=8", f"hydra.run.dir={folder}"], tmp_path)
-    assert proc.returncode == 0, proc.stderr
+def test_console_script_writes_a_run_folder(console: dict[str, Console]) -> None:
+    run_ = console["ok"]
+    assert run_.returncode == 0, run_.output
+    folder = run_.folder
     for name in (RESULT_FILE, SUMMARY_FILE, "config.yaml", *FIGURES):
         assert (folder / name).is_file(), name
     assert (folder / ".hydra" / "overrides.yaml").is_file()
@@ -364,18 +401,26 @@ def test_console_script_writes_a_run_folder(tmp_path: Path) -> None:
     assert loaded.grid.shape == (32,)
     assert len(loaded.times) == 9
     assert f"cost J = {loaded.cost:.8g}" in log
+    assert "outer iteration" in run_.output  # progress is shown on the console too
     # nothing was written outside the requested folder
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["run"]
+    assert sorted(p.name for p in run_.cwd.iterdir()) == ["run"]
 
 
-def test_console_script_unknown_option(tmp_path: Path) -> None:
-    proc = _console(["interaction=nope", f"hydra.run.dir={tmp_path / 'run'}"], tmp_path)
-    assert proc.returncode != 0
-    output = proc.stdout + proc.stderr
-    assert "interaction/nope" in output
+def test_console_script_unknown_option(console: dict[str, Console]) -> None:
+    run_ = console["unknown_option"]
+    assert run_.returncode != 0
+    assert "interaction/nope" in run_.output
     for option in sorted(p.stem for p in (mfbridge.api.CONF_DIR / "interaction").glob("*.yaml")):
-        assert option in output
-    assert not (tmp_path / "run" / RESULT_FILE).exists()
+        assert option in run_.output
+    assert not (run_.folder / RESULT_FILE).exists()
+
+
+def test_console_script_bad_value_is_a_clean_error(console: dict[str, Console]) -> None:
+    run_ = console["bad_value"]
+    assert run_.returncode == 2, run_.output
+    assert "noise must be a positive finite number, got -1" in run_.output
+    assert "Traceback" not in run_.output
+    assert not (run_.folder / RESULT_FILE).exists()
 
 
 # ---------------------------------------------------------------------------- non-convergence
