@@ -48,8 +48,23 @@ def run(cfg: Any, output_dir: str | Path) -> BridgeResult:
     return result
 
 
+# Subcommands: ``mfbridge NAME ...`` runs ``mfbridge.commands.NAME.main(argv)``; anything else
+# is a Hydra override list for a solve.
+SUBCOMMANDS: dict[str, str] = {
+    "check": "mfbridge.commands.check",
+    "replay": "mfbridge.commands.replay",
+    "collect": "mfbridge.commands.collect",
+}
+
+
 def main() -> None:
     """Console entry point (``mfbridge``)."""
+    if len(sys.argv) > 1 and sys.argv[1] in SUBCOMMANDS:
+        import importlib
+
+        module = importlib.import_module(SUBCOMMANDS[sys.argv[1]])
+        sys.exit(module.main(sys.argv[2:]))
+
     import hydra
     from hydra.core.hydra_config import HydraConfig
 
