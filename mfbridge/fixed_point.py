@@ -35,6 +35,7 @@ weight :math:`e^{-\int V}` uses the trapezoid rule, so the scheme is second orde
 
 from __future__ import annotations
 
+import dataclasses
 import time
 import warnings
 from collections.abc import Callable
@@ -52,6 +53,7 @@ from mfbridge.reference import EdgeRates, PairField, bernoulli_derivative, edge_
 from mfbridge.result import BridgeResult
 
 METHODS = ("optimal", "frozen")
+COUPLING_MAX_CELLS = 4096
 ROUTES = ("auto", "operator", "dense")
 
 
@@ -69,7 +71,10 @@ class SolverOptions:
       and the L1 error of the initial marginal are both below it;
     * ``anderson`` (history depth, 0 = plain iteration) and ``damping`` (mixing weight in (0, 1]);
     * ``sinkhorn_tol``, ``sinkhorn_max_iter``: the entropic sub-problem's own stopping rule (its
-      tolerance is loosened to 1e-2 × the outer residual while the outer loop is far out).
+      tolerance is loosened to 1e-2 × the outer residual while the outer loop is far out);
+    * ``coupling``: also return the static coupling π(x₀, x_T) (who ends where) with the operator
+      route, by forming the kernel once at the end (n × n memory; at most ``COUPLING_MAX_CELLS``
+      cells). The dense route always returns it.
     """
 
     method: str = "optimal"
@@ -81,6 +86,7 @@ class SolverOptions:
     sinkhorn_tol: float = 1e-11
     sinkhorn_max_iter: int = 5000
     dense_max_cells: int = 64
+    coupling: bool = False
 
     def __post_init__(self) -> None:
         if self.method not in METHODS:
@@ -96,6 +102,7 @@ class SolverOptions:
             ("anderson", int(self.anderson) == self.anderson and self.anderson >= 0),
             ("damping", 0 < self.damping <= 1),
             ("dense_max_cells", self.dense_max_cells >= 0),
+            ("coupling", isinstance(self.coupling, bool)),
         ]
         for name, ok in checks:
             if not ok:
@@ -234,6 +241,11 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
     if route == "auto":
         route = "dense" if grid.size <= options.dense_max_cells else "operator"
     inner = entropic.solve_dense if route == "dense" else entropic.solve_operator
+    if (route == "dense" or options.coupling) and grid.size > COUPLING_MAX_CELLS:
+        raise InputError(
+            f"the static coupling of {grid.size} cells needs an n x n kernel; it is available up "
+            f"to {COUPLING_MAX_CELLS} cells (use route=operator without coupling)"
+        )
     mu, nu = problem.initial, problem.final
     optimal = options.method == "optimal" and not bridge.pair.is_zero
     interacting = not bridge.pair.is_zero
@@ -289,6 +301,11 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
             v_bar = x_next[p_bar.size :].reshape(v_bar.shape)
 
     assert solved is not None and ref is not None
+    if options.coupling and solved.sol.coupling is None:
+        sol = solved.sol
+        plan = np.exp(sol.log_a.reshape(-1, 1) + entropic.log_kernel(ref)
+                      + sol.log_b.reshape(1, -1))
+        solved.sol = dataclasses.replace(sol, coupling=plan)
     if status == "converged":
         message = (f"converged in {it} outer iterations: residual {residual:.2e}, "
                    f"marginal error {solved.sol.marginal_error:.2e}")

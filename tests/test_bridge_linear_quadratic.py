@@ -124,6 +124,12 @@ def test_dense_and_operator_routes_agree():
     cell = dense.grid.cell_volume
     assert np.allclose(coupling.sum(axis=1), dense.density[0] * cell, atol=1e-10)
     assert np.allclose(coupling.sum(axis=0), dense.density[-1] * cell, atol=1e-10)
+    # the operator route forms the same coupling on request
+    problem = BridgeProblem(grid=dense.grid, initial=Gaussian(M0, C0), final=Gaussian(M1, C1),
+                            noise=1.0, horizon=1.0, steps=12, confinement=Harmonic(1.0),
+                            interaction=HarmonicInteraction(1.5))
+    with_coupling = solve_bridge(problem, SolverOptions(route="operator", coupling=True))
+    assert np.abs(with_coupling.coupling - coupling).max() < 1e-10
 
 
 @pytest.mark.parametrize(
