@@ -49,7 +49,7 @@ from mfbridge.anderson import AndersonMixer
 from mfbridge.errors import ConvergenceWarning, InputError, unknown_name
 from mfbridge.problem import BridgeProblem
 from mfbridge.propagator import StepOperator
-from mfbridge.reference import EdgeRates, PairField, bernoulli_derivative, edge_rates
+from mfbridge.reference import EdgeRates, PairField, bernoulli_derivative, edge_rates, faces
 from mfbridge.result import BridgeResult
 
 METHODS = ("optimal", "frozen")
@@ -188,23 +188,16 @@ class _Bridge:
         c = np.zeros_like(s.p)
         for a in range(self.grid.dim):
             ax = 1 + a
-            n = self.shape[a]
-            lo, hi = slice(0, n - 1), slice(1, n)
-
-            def take(x: np.ndarray, sl: slice, ax: int = ax) -> np.ndarray:
-                index = [slice(None)] * x.ndim
-                index[ax] = sl
-                return x[tuple(index)]
-
+            lo, hi = faces(s.p.ndim, ax, self.shape[a])
             dphi = np.diff(s.phi, axis=ax)
             scale = 0.5 * noise**2 / self.grid.spacing[a] ** 2 * beta
             # rho_i (1 - h_j/h_i) = p_i - f_i h_j, written with potentials to stay finite
-            s_fwd = take(s.p, lo) - np.exp(take(s.log_f, lo) + take(s.log_h, hi))
-            s_bwd = take(s.p, hi) - np.exp(take(s.log_f, hi) + take(s.log_h, lo))
+            s_fwd = s.p[lo] - np.exp(s.log_f[lo] + s.log_h[hi])
+            s_bwd = s.p[hi] - np.exp(s.log_f[hi] + s.log_h[lo])
             edge = scale * (bernoulli_derivative(beta * dphi) * s_fwd
                             - bernoulli_derivative(-beta * dphi) * s_bwd)
-            take(c, lo)[...] -= edge
-            take(c, hi)[...] += edge
+            c[lo] -= edge
+            c[hi] += edge
         return self.pair(c)
 
 
@@ -385,12 +378,7 @@ def _net_fluxes(bridge: _Bridge, s: _Solved
     rates = edge_rates(s.phi, bridge.grid, bridge.problem.noise)
     bridge_flux, reference_flux = [], []
     for a in range(bridge.grid.dim):
-        ax = 1 + a
-        n = bridge.shape[a]
-        lo = [slice(None)] * s.p.ndim
-        hi = [slice(None)] * s.p.ndim
-        lo[ax], hi[ax] = slice(0, n - 1), slice(1, n)
-        lo_t, hi_t = tuple(lo), tuple(hi)
+        lo_t, hi_t = faces(s.p.ndim, 1 + a, bridge.shape[a])
         fwd, bwd = rates.forward[a], rates.backward[a]
         bridge_flux.append(fwd * np.exp(s.log_f[lo_t] + s.log_h[hi_t])
                            - bwd * np.exp(s.log_f[hi_t] + s.log_h[lo_t]))

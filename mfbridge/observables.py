@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 
 from mfbridge.grid import Grid
-from mfbridge.reference import PairField
+from mfbridge.reference import PairField, faces
 
 
 def _spatial_axes(grid: Grid) -> tuple[int, ...]:
@@ -71,9 +71,8 @@ def flux_action(
     """
     total = np.zeros(p.shape[0])
     for a, j in enumerate(net_flux):
-        lo = np.take(p, range(p.shape[1 + a] - 1), axis=1 + a)
-        hi = np.take(p, range(1, p.shape[1 + a]), axis=1 + a)
-        mean_mass = 0.5 * (lo + hi)
+        lo, hi = faces(p.ndim, 1 + a, p.shape[1 + a])
+        mean_mass = 0.5 * (p[lo] + p[hi])
         with np.errstate(divide="ignore", invalid="ignore"):
             term = np.where(mean_mass > 0, j**2 * grid.spacing[a] ** 2 / mean_mass, 0.0)
         total += term.reshape(p.shape[0], -1).sum(axis=1)

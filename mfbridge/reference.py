@@ -89,6 +89,15 @@ class EdgeRates:
     backward: tuple[np.ndarray, ...]
 
 
+def faces(ndim: int, axis: int, n: int) -> tuple[tuple[slice, ...], tuple[slice, ...]]:
+    """Index tuples selecting the cells below and above every face along ``axis`` of an array
+    with ``ndim`` dimensions whose that axis has length ``n``: ``x[lo]``, ``x[hi]``."""
+    lo = [slice(None)] * ndim
+    hi = [slice(None)] * ndim
+    lo[axis], hi[axis] = slice(0, n - 1), slice(1, n)
+    return tuple(lo), tuple(hi)
+
+
 def potential_differences(phi: np.ndarray, grid: Grid) -> tuple[np.ndarray, ...]:
     """:math:`\\Phi_{i+1} - \\Phi_i` along each axis; ``phi`` has shape (*batch, *grid.shape)."""
     nb = phi.ndim - grid.dim
