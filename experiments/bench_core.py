@@ -264,6 +264,7 @@ def _run_2d(kind: str, n: int, steps: int) -> dict[str, Any]:
     )
     options = SolverOptions(route="operator")
     rss_before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    hwm_before = vm_hwm_mb()
     tracemalloc.start()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
@@ -271,6 +272,7 @@ def _run_2d(kind: str, n: int, steps: int) -> dict[str, Any]:
     traced_peak = tracemalloc.get_traced_memory()[1]
     tracemalloc.stop()
     rss_after = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    hwm_after = vm_hwm_mb()
     # timed run(s) without tracemalloc, which slows allocation-heavy code
     timed = timed_solve(problem, "operator")
     result = timed.result
@@ -281,6 +283,7 @@ def _run_2d(kind: str, n: int, steps: int) -> dict[str, Any]:
         "runs": timed.runs,
         "tracemalloc_peak_mb": traced_peak / 2**20,
         "maxrss_before_mb": rss_before / 1024, "maxrss_after_mb": rss_after / 1024,
+        "vmhwm_before_mb": hwm_before, "vmhwm_after_mb": hwm_after,
     }
     if kind == "lq":
         exact = lq_bridge(stiffness=STIFFNESS, strength=STRENGTH, noise=NOISE, horizon=HORIZON,
@@ -288,6 +291,20 @@ def _run_2d(kind: str, n: int, steps: int) -> dict[str, Any]:
                           times=steps + 1)
         row.update(lq_errors(result, exact))
     return row
+
+
+def vm_hwm_mb() -> float:
+    """Peak resident set of this process image (VmHWM, Linux), in MB; nan if unavailable.
+
+    Unlike ``ru_maxrss`` it is not carried over from the parent through fork + exec.
+    """
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return float(line.split()[1]) / 1024
+    except OSError:
+        pass
+    return float("nan")
 
 
 def run_2d(kind: str, n: int, steps: int) -> dict[str, Any]:
@@ -380,6 +397,12 @@ def main(argv: list[str] | None = None) -> int:
               "interleaved across the table; `*` = single run). With other processes on the "
               "machine the CPU time is the steadier measure.")
     md.append("")
+
+    # ---- 2D cases first, while this process is small: on Linux a spawned child's ru_maxrss
+    # starts from the parent's resident size at fork time
+    log("Table 3: 2D (run first)")
+    n2, k2 = cfg["t3_n"], cfg["t3_K"]
+    t3 = [run_2d(kind, n2, k2) for kind in ("gaussian-core", "lq")]
 
     # ---- Table 1
     log("Table 1: reference case on [-4, 4], operator route")
@@ -532,14 +555,11 @@ def main(argv: list[str] | None = None) -> int:
            "over all time nodes and cells.", ""]
 
     # ---- Table 3
-    log("Table 3: 2D")
-    n2, k2 = cfg["t3_n"], cfg["t3_K"]
-    t3 = [run_2d(kind, n2, k2) for kind in ("gaussian-core", "lq")]
     data["table3"] = t3
     rows3 = []
     for r in t3:
         if "error" in r:
-            rows3.append([r["kind"], r["error"]] + ["—"] * 9)
+            rows3.append([r["kind"], r["error"]] + ["—"] * 10)
             continue
         errs = (f"{r['err_cost']:.2e} / {r['err_mean']:.2e} / {r['err_var']:.2e}"
                 if "err_cost" in r else "—")
@@ -552,17 +572,23 @@ def main(argv: list[str] | None = None) -> int:
             str(r["sinkhorn"]), r["status"], f"{r['cost']:.6f}",
             f"{r['tracemalloc_peak_mb']:.1f}",
             f"{r['maxrss_before_mb']:.0f} → {r['maxrss_after_mb']:.0f}",
-            f"{r['maxrss_after_mb'] - r['maxrss_before_mb']:.0f}", errs,
+            f"{r['maxrss_after_mb'] - r['maxrss_before_mb']:.0f}",
+            f"{r['vmhwm_before_mb']:.0f} → {r['vmhwm_after_mb']:.0f}", errs,
             f"{'met' if ok else 'NOT met'}",
         ])
     md += [f"## Table 3 — 2D, grid {n2} × {n2} on [-4, 4]², K = {k2}, operator route", "",
            "μ = N([-1, 0.5], diag(0.16, 0.25)), ν = N([1.2, -0.5], diag(0.49, 0.3)), "
            "U = |x|²/2. Each case runs in a fresh spawned process: a first solve under "
            "`tracemalloc` gives the Python-level peak and the `ru_maxrss` change, a second "
-           "untraced solve gives the time.", "",
+           "untraced solve gives the time. These cases run before the 1D tables, while the "
+           "parent process is small: on Linux `ru_maxrss` of a spawned child includes the "
+           "parent's resident size at fork time (carried through exec), so its \"before\" "
+           "value is mostly the parent's; VmHWM (/proc/self/status) is the child's own peak "
+           "resident set (imports included).", "",
            md_table(["case", "time [s] (CPU)", "outer it.", "Sinkhorn it.", "status", "cost J",
                      "tracemalloc peak [MB]", "maxrss before → after [MB]",
-                     "Δ maxrss [MB]", "LQ errors: rel. cost / mean / cov",
+                     "Δ maxrss [MB]", "VmHWM before → after [MB]",
+                     "LQ errors: rel. cost / mean / cov",
                      f"target (converged, < {TARGET_2D_TIME:g} s)"], rows3), ""]
 
     # ---- figure
@@ -594,25 +620,30 @@ def make_figure(path: Path, t1: list[dict[str, Any]], t1b: list[dict[str, Any]],
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    fig, (ax_a, ax_b) = plt.subplots(1, 2, figsize=(12, 4.8))
+    fig, (ax_a, ax_m, ax_b) = plt.subplots(1, 3, figsize=(17, 5))
     colors = plt.rcParams["axes.prop_cycle"].by_key()["color"]
-    for i, n in enumerate(sorted({r["n"] for r in t1b})):
-        rows = sorted((r for r in t1b if r["n"] == n), key=lambda r: r["K"])
-        ax_a.loglog([r["K"] for r in rows], [r["err_cost"] for r in rows], "o-",
-                    color=colors[i % len(colors)], label=f"[-6, 6], n = {n}")
-    for i, n in enumerate(sorted({r["n"] for r in t1})):
-        rows = sorted((r for r in t1 if r["n"] == n), key=lambda r: r["K"])
-        ax_a.loglog([r["K"] for r in rows], [r["err_cost"] for r in rows], "x--",
-                    color=colors[i % len(colors)], alpha=0.5, label=f"[-4, 4], n = {n}")
-    ks = np.array(sorted({r["K"] for r in t1b}), float)
-    if ks.size and t1b:
-        top = max(r["err_cost"] for r in t1b)
-        ax_a.loglog(ks, top * (ks / ks[0]) ** -2, "k:", label="slope −2")
-    ax_a.set_xlabel("time steps K")
-    ax_a.set_ylabel("relative cost error |J − J_exact| / J_exact")
-    ax_a.set_title("(a) error vs K (same h on both boxes)")
-    ax_a.legend(fontsize=7, ncol=2)
-    ax_a.grid(True, which="both", alpha=0.3)
+    for ax, key, ylabel, title in (
+        (ax_a, "err_cost", "relative cost error |J − J_exact| / J_exact",
+         "(a) cost error vs K"),
+        (ax_m, "err_mean", "max_t |mean − mean_exact|", "(a') mean error vs K"),
+    ):
+        for i, n in enumerate(sorted({r["n"] for r in t1b})):
+            rows = sorted((r for r in t1b if r["n"] == n), key=lambda r: r["K"])
+            ax.loglog([r["K"] for r in rows], [r[key] for r in rows], "o-",
+                      color=colors[i % len(colors)], label=f"[-6, 6], n = {n}")
+        for i, n in enumerate(sorted({r["n"] for r in t1})):
+            rows = sorted((r for r in t1 if r["n"] == n), key=lambda r: r["K"])
+            ax.loglog([r["K"] for r in rows], [r[key] for r in rows], "x--",
+                      color=colors[i % len(colors)], alpha=0.45, label=f"[-4, 4], n = {n}")
+        ks = np.array(sorted({r["K"] for r in t1b}), float)
+        if ks.size and t1b:
+            top = max(r[key] for r in t1b)
+            ax.loglog(ks, top * (ks / ks[0]) ** -2, "k:", label="slope −2")
+        ax.set_xlabel("time steps K")
+        ax.set_ylabel(ylabel)
+        ax.set_title(title + " (same h on both boxes)")
+        ax.legend(fontsize=7, ncol=2)
+        ax.grid(True, which="both", alpha=0.3)
 
     for j, k in enumerate(sorted({r["K"] for r in t2})):
         rows = sorted((r for r in t2 if r["K"] == k), key=lambda r: r["n"])
@@ -630,7 +661,7 @@ def make_figure(path: Path, t1: list[dict[str, Any]], t1b: list[dict[str, Any]],
                     color=colors[(3 + j) % len(colors)], label=f"operator, K = {k} (Table 1)")
     ax_b.set_xlabel("cells n")
     ax_b.set_ylabel("time [s] (min over repeats)")
-    ax_b.set_title("(b) time vs n, both routes")
+    ax_b.set_title("(b) wall time vs n, both routes")
     ax_b.legend(fontsize=7)
     ax_b.grid(True, which="both", alpha=0.3)
     fig.tight_layout()
