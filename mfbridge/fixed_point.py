@@ -53,6 +53,7 @@ from mfbridge.reference import EdgeRates, PairField, bernoulli_derivative, edge_
 from mfbridge.result import BridgeResult
 
 METHODS = ("optimal", "frozen")
+PROPAGATIONS = ("auto", "rational", "log")
 COUPLING_MAX_CELLS = 4096
 ROUTES = ("auto", "operator", "dense")
 
@@ -72,6 +73,12 @@ class SolverOptions:
     * ``anderson`` (history depth, 0 = plain iteration) and ``damping`` (mixing weight in (0, 1]);
     * ``sinkhorn_tol``, ``sinkhorn_max_iter``: the entropic sub-problem's own stopping rule (its
       tolerance is loosened to 1e-2 × the outer residual while the outer loop is far out);
+    * ``propagation``: how time steps are applied in the sweeps: ``"rational"`` (fast; values
+      below ~1e-11 of the largest are lost), ``"log"`` (exact in the log domain, any dynamic
+      range, slower), or ``"auto"`` (rational, switching to log when the kernel underflows where
+      an endpoint has mass or the Sinkhorn iteration stalls);
+    * ``continuation``: if the iteration fails from the start given, retry switching the
+      interaction on in this many stages (0: never);
     * ``coupling``: also return the static coupling π(x₀, x_T) (who ends where) with the operator
       route, by forming the kernel once at the end (n × n memory; at most ``COUPLING_MAX_CELLS``
       cells). The dense route always returns it.
@@ -87,12 +94,16 @@ class SolverOptions:
     sinkhorn_max_iter: int = 5000
     dense_max_cells: int = 64
     coupling: bool = False
+    continuation: int = 4
+    propagation: str = "auto"
 
     def __post_init__(self) -> None:
         if self.method not in METHODS:
             raise unknown_name("method", self.method, METHODS)
         if self.route not in ROUTES:
             raise unknown_name("route", self.route, ROUTES)
+        if self.propagation not in PROPAGATIONS:
+            raise unknown_name("propagation", self.propagation, PROPAGATIONS)
         checks = [
             ("tol", self.tol > 0),
             ("sinkhorn_tol", self.sinkhorn_tol > 0),
@@ -103,6 +114,8 @@ class SolverOptions:
             ("damping", 0 < self.damping <= 1),
             ("dense_max_cells", self.dense_max_cells >= 0),
             ("coupling", isinstance(self.coupling, bool)),
+            ("continuation", int(self.continuation) == self.continuation
+             and self.continuation >= 0),
         ]
         for name, ok in checks:
             if not ok:
@@ -135,8 +148,11 @@ class _Solved:
 class _Bridge:
     """Discretised problem: grid, potentials on the grid, time weights."""
 
-    def __init__(self, problem: BridgeProblem) -> None:
+    def __init__(self, problem: BridgeProblem, scale: float = 1.0,
+                 log_domain: bool = False) -> None:
         self.problem = problem
+        self.scale = scale  # the interaction used is scale * W (continuation)
+        self.log_domain = log_domain
         grid = problem.grid
         self.grid = grid
         self.shape = grid.shape
@@ -159,7 +175,7 @@ class _Bridge:
         return w.reshape(-1, *([1] * self.grid.dim))
 
     def potential(self, p: np.ndarray) -> np.ndarray:
-        return self.confinement + self.pair(p)
+        return self.confinement + self.scale * self.pair(p)
 
     def reference(self, p_bar: np.ndarray, v_bar: np.ndarray) -> entropic.FrozenReference:
         phi = self.potential(p_bar)
@@ -170,7 +186,7 @@ class _Bridge:
             rk = EdgeRates(tuple(r[k] for r in rates.forward),
                            tuple(r[k] for r in rates.backward))
             steps.append(StepOperator(rk, self.dt, self.shape))
-        return entropic.FrozenReference(steps, -self.expand(self.omega) * v_bar)
+        return entropic.FrozenReference(steps, -self.expand(self.omega) * v_bar, self.log_domain)
 
     def solved(self, sol: entropic.EntropicSolution, ref: entropic.FrozenReference,
                v_bar: np.ndarray) -> _Solved:
@@ -198,7 +214,7 @@ class _Bridge:
                             - bernoulli_derivative(-beta * dphi) * s_bwd)
             c[lo] -= edge
             c[hi] += edge
-        return self.pair(c)
+        return self.scale * self.pair(c)
 
 
 def _residual(p: np.ndarray, p_bar: np.ndarray, v: np.ndarray, v_bar: np.ndarray,
@@ -213,47 +229,155 @@ def solve_bridge(
     problem: BridgeProblem,
     options: SolverOptions | None = None,
     callback: Callable[[Iteration], None] | None = None,
+    warm_start: BridgeResult | None = None,
 ) -> BridgeResult:
     """Compute the mean-field Schrödinger bridge of ``problem``.
 
     Returns a :class:`~mfbridge.result.BridgeResult` whose ``status`` is ``"converged"`` or
     ``"not_converged"`` (then a :class:`~mfbridge.errors.ConvergenceWarning` is also issued, with
     the last residual). ``callback`` receives an :class:`Iteration` after every outer iteration.
+    ``warm_start``: a result on the same grid and time steps (for example the solution for a
+    nearby parameter value) whose flow, correction and potentials start the iteration.
+
+    If the iteration from the given start fails and ``options.continuation`` is positive, the
+    interaction is switched on gradually, W → (j/m) W for j = 1..m, each solve starting from the
+    previous one.
     """
     options = options or SolverOptions()
+    if warm_start is not None:
+        _check_warm_start(problem, warm_start)
     with threadpool_limits(limits=1):
-        return _solve(problem, options, callback)
+        return _solve(problem, options, callback, warm_start)
+
+
+def _check_warm_start(problem: BridgeProblem, warm: BridgeResult) -> None:
+    if not isinstance(warm, BridgeResult):
+        raise InputError(f"warm_start must be a BridgeResult, got {type(warm).__name__}")
+    if warm.grid.shape != problem.grid.shape or len(warm.times) != problem.steps + 1:
+        raise InputError(
+            f"warm_start has grid {warm.grid.shape} and {len(warm.times) - 1} steps; the problem "
+            f"has grid {problem.grid.shape} and {problem.steps} steps"
+        )
+
+
+@dataclass
+class _Start:
+    """Where an outer iteration starts."""
+
+    p_bar: np.ndarray
+    v_bar: np.ndarray
+    log_b: np.ndarray
+
+
+@dataclass
+class _Outcome:
+    status: str
+    solved: _Solved
+    ref: entropic.FrozenReference
+    v_bar: np.ndarray
+    iterations: int
+    residual: float
+
+    def start(self) -> _Start:
+        return _Start(self.solved.p, self.v_bar, self.solved.sol.log_b)
+
+
+def _cold_start(bridge: _Bridge) -> _Start:
+    problem = bridge.problem
+    s = bridge.expand(problem.times / problem.horizon)
+    p_bar = (1 - s) * problem.initial + s * problem.final
+    return _Start(p_bar, np.zeros_like(p_bar), np.zeros(problem.grid.shape))
 
 
 def _solve(problem: BridgeProblem, options: SolverOptions,
-           callback: Callable[[Iteration], None] | None) -> BridgeResult:
-    start = time.perf_counter()
-    bridge = _Bridge(problem)
+           callback: Callable[[Iteration], None] | None,
+           warm_start: BridgeResult | None) -> BridgeResult:
+    start_time = time.perf_counter()
     grid = problem.grid
     route = options.route
     if route == "auto":
         route = "dense" if grid.size <= options.dense_max_cells else "operator"
-    inner = entropic.solve_dense if route == "dense" else entropic.solve_operator
     if (route == "dense" or options.coupling) and grid.size > COUPLING_MAX_CELLS:
         raise InputError(
             f"the static coupling of {grid.size} cells needs an n x n kernel; it is available up "
             f"to {COUPLING_MAX_CELLS} cells (use route=operator without coupling)"
         )
-    mu, nu = problem.initial, problem.final
-    optimal = options.method == "optimal" and not bridge.pair.is_zero
-    interacting = not bridge.pair.is_zero
-
-    s = bridge.expand(problem.times / problem.horizon)
-    p_bar = (1 - s) * mu + s * nu
-    v_bar = np.zeros_like(p_bar)
-    log_b = np.zeros(grid.shape)
-    mixer = AndersonMixer(options.anderson, options.damping)
+    log_domain = options.propagation == "log"
+    bridge = _Bridge(problem, log_domain=log_domain)
+    if warm_start is None:
+        start = _cold_start(bridge)
+    else:
+        start = _Start(warm_start.masses,
+                       warm_start.correction if options.method == "optimal"
+                       else np.zeros_like(warm_start.correction),
+                       np.nan_to_num(warm_start.log_backward[-1], neginf=-745.0))
     history: list[dict[str, float]] = []
+    note = ""
+    try:
+        outcome = _iterate(bridge, options, route, start, history, callback)
+    except entropic.UnderflowError:
+        if options.propagation != "auto":
+            raise
+        outcome = None
+    if options.propagation == "auto" and (outcome is None or outcome.status == "stalled"):
+        # the rational steps lost cells the endpoints need: redo exactly in the log domain
+        bridge = _Bridge(problem, log_domain=True)
+        start = outcome.start() if outcome is not None else start
+        outcome = _iterate(bridge, options, route, start, history, callback)
+        note = " (log-domain propagation: the endpoints span more than double precision)"
+    if outcome.status == "stalled":
+        outcome.status = "not_converged"
+    if outcome.status != "converged" and options.continuation > 0 and not bridge.pair.is_zero:
+        m = options.continuation
+        start = _cold_start(bridge)
+        for j in range(1, m + 1):
+            stage = _Bridge(problem, scale=j / m, log_domain=bridge.log_domain)
+            outcome = _iterate(stage, options, route, start, history, callback)
+            if outcome.status != "converged":
+                break
+            start = outcome.start()
+        note += f" (by continuation in the interaction strength over {m} stages)"
+    solved, ref = outcome.solved, outcome.ref
+    if options.coupling and solved.sol.coupling is None:
+        sol = solved.sol
+        plan = np.exp(sol.log_a.reshape(-1, 1) + entropic.log_kernel(ref)
+                      + sol.log_b.reshape(1, -1))
+        solved.sol = dataclasses.replace(sol, coupling=plan)
+    it, residual, status = outcome.iterations, outcome.residual, outcome.status
+    if status == "converged":
+        message = (f"converged in {it} outer iterations{note}: residual {residual:.2e}, "
+                   f"marginal error {solved.sol.marginal_error:.2e}")
+    else:
+        message = (f"{status.replace('_', ' ')} after {it} outer iterations{note}: last residual "
+                   f"{residual:.2e} (tolerance {options.tol:.1e}), marginal error "
+                   f"{solved.sol.marginal_error:.2e}")
+        warnings.warn(ConvergenceWarning(message), stacklevel=3)
+    if solved.sol.unresolved_mass > options.tol:
+        message += (f"; note: {solved.sol.unresolved_mass:.1e} of the endpoint mass lies where "
+                    f"the reference reaches it only below {entropic.RELIABLE:.0e} of its peak, so "
+                    "the flow in those far tails is approximate")
+    solve_seconds = float(sum(h["seconds"] for h in history))
+    return _result(bridge, solved, ref, outcome.v_bar, options, route, status, message,
+                   len(history), residual, history,
+                   {"solve": solve_seconds, "total": time.perf_counter() - start_time})
+
+
+def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
+             history: list[dict[str, float]],
+             callback: Callable[[Iteration], None] | None) -> _Outcome:
+    """The outer fixed-point iteration from ``start``; appends to ``history``."""
+    problem = bridge.problem
+    grid = problem.grid
+    inner = entropic.solve_dense if route == "dense" else entropic.solve_operator
+    mu, nu = problem.initial, problem.final
+    interacting = not bridge.pair.is_zero
+    optimal = options.method == "optimal" and interacting
+    p_bar, v_bar, log_b = start.p_bar, start.v_bar, start.log_b
+    mixer = AndersonMixer(options.anderson, options.damping)
     inner_tol = options.sinkhorn_tol if not interacting else max(options.sinkhorn_tol, 1e-4)
     status, residual, solved, ref = "not_converged", np.inf, None, None
-    solve_seconds = 0.0
     it = 0
-    for it in range(1, options.max_iter + 1):
+    for it in range(1, options.max_iter + 1):  # noqa: B007 - reported after the loop
         t0 = time.perf_counter()
         ref = bridge.reference(p_bar, v_bar)
         sol = inner(ref, mu, nu, log_b, tol=inner_tol, max_iter=options.sinkhorn_max_iter)
@@ -265,14 +389,18 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
             if interacting else 0.0
         )
         seconds = time.perf_counter() - t0
-        solve_seconds += seconds
-        record = Iteration(it, residual, sol.marginal_error, sol.iterations, seconds)
         history.append({"residual": residual, "marginal_error": sol.marginal_error,
-                        "sinkhorn_iterations": float(sol.iterations), "seconds": seconds})
+                        "sinkhorn_iterations": float(sol.iterations), "seconds": seconds,
+                        "interaction_scale": bridge.scale})
         if callback is not None:
-            callback(record)
+            callback(Iteration(len(history), residual, sol.marginal_error, sol.iterations,
+                               seconds))
         if not np.isfinite(residual) or not np.isfinite(sol.marginal_error):
             status = "diverged"
+            break
+        if (sol.iterations >= options.sinkhorn_max_iter and sol.marginal_error > inner_tol
+                and not bridge.log_domain):
+            status = "stalled"  # the entropic problem cannot be solved to working precision
             break
         if residual <= options.tol and sol.marginal_error <= max(options.tol, options.sinkhorn_tol):
             status = "converged"
@@ -292,23 +420,8 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
         p_bar = x_next[: p_bar.size].reshape(p_bar.shape)
         if optimal:
             v_bar = x_next[p_bar.size :].reshape(v_bar.shape)
-
     assert solved is not None and ref is not None
-    if options.coupling and solved.sol.coupling is None:
-        sol = solved.sol
-        plan = np.exp(sol.log_a.reshape(-1, 1) + entropic.log_kernel(ref)
-                      + sol.log_b.reshape(1, -1))
-        solved.sol = dataclasses.replace(sol, coupling=plan)
-    if status == "converged":
-        message = (f"converged in {it} outer iterations: residual {residual:.2e}, "
-                   f"marginal error {solved.sol.marginal_error:.2e}")
-    else:
-        message = (f"{status.replace('_', ' ')} after {it} outer iterations: last residual "
-                   f"{residual:.2e} (tolerance {options.tol:.1e}), marginal error "
-                   f"{solved.sol.marginal_error:.2e}")
-        warnings.warn(ConvergenceWarning(message), stacklevel=3)
-    return _result(bridge, solved, ref, v_bar, options, route, status, message, it, residual,
-                   history, {"solve": solve_seconds, "total": time.perf_counter() - start})
+    return _Outcome(status, solved, ref, v_bar, it, residual)
 
 
 def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: np.ndarray,
