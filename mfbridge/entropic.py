@@ -41,8 +41,6 @@ import ot
 from mfbridge.errors import MFBridgeError
 from mfbridge.propagator import StepOperator
 
-RELIABLE = 1e-11  # values below this fraction of the largest are not trusted
-
 
 class UnderflowError(MFBridgeError):
     """The reference kernel underflowed where an endpoint has mass."""
@@ -72,7 +70,6 @@ class EntropicSolution:
     marginal_error: float  # L1 distance of the end marginals to mu and nu (the larger)
     iterations: int
     coupling: np.ndarray | None = None  # (n, n) static coupling, dense route only
-    unresolved_mass: float = 0.0  # endpoint mass the reference reaches only below RELIABLE
 
     def log_marginals(self, log_weights: np.ndarray) -> np.ndarray:
         return self.log_forward + log_weights + self.log_backward
@@ -86,9 +83,9 @@ def _log_apply(apply, log_v: np.ndarray) -> np.ndarray:
     shift = log_v[finite].max()
     out = apply(np.exp(log_v - shift))
     # The rational step operator is exact to ~1e-11 relative to the largest entry; below that a
-    # value is noise and may come out negative: it is zero to working accuracy. (Use the
-    # log-domain propagation when such values matter; the endpoint mass that the kernel reaches
-    # only below RELIABLE of its peak is reported as ``unresolved_mass``.)
+    # value is noise and may come out negative: it is zero to working accuracy. When such values
+    # matter (an endpoint has mass there), the sweeps raise UnderflowError or Sinkhorn stalls,
+    # and the solver switches to the exact log-domain steps.
     np.maximum(out, 0.0, out=out)
     with np.errstate(divide="ignore"):
         return shift + np.log(out)
@@ -169,22 +166,7 @@ def solve_operator(
         if err < tol:
             break
         log_b = _scaling(log_nu, wk + log_f[-1], "final")
-    unresolved = max(unresolved_mass(mu, w0 + log_g[0], ref.log_domain),
-                     unresolved_mass(nu, wk + log_f[-1], ref.log_domain))
-    return EntropicSolution(log_f, log_g, log_a, log_b, err, it, unresolved_mass=unresolved)
-
-
-def unresolved_mass(target: np.ndarray, log_kernel_side: np.ndarray, exact: bool) -> float:
-    """Mass of ``target`` in cells where the kernel applied to the other scaling is below
-    ``RELIABLE`` times its largest value: there the rational steps are only approximate (zero
-    when the propagation is ``exact``, i.e. in the log domain)."""
-    if exact:
-        return 0.0
-    finite = np.isfinite(log_kernel_side)
-    if not finite.any():
-        return float(target.sum())
-    low = log_kernel_side < log_kernel_side[finite].max() + np.log(RELIABLE)
-    return float(target[low].sum())
+    return EntropicSolution(log_f, log_g, log_a, log_b, err, it)
 
 
 def log_kernel(ref: FrozenReference) -> np.ndarray:
@@ -256,10 +238,7 @@ def solve_dense(
     log_g = backward_sweep(ref, log_b)
     err = max(_l1_error(log_a + ref.log_weights[0] + log_g[0], mu),
               _l1_error(log_f[-1] + ref.log_weights[-1] + log_b, nu))
-    unresolved = max(unresolved_mass(mu, ref.log_weights[0] + log_g[0], ref.log_domain),
-                     unresolved_mass(nu, ref.log_weights[-1] + log_f[-1], ref.log_domain))
-    return EntropicSolution(log_f, log_g, log_a, log_b, err, int(info["niter"]) + 1, plan,
-                            unresolved)
+    return EntropicSolution(log_f, log_g, log_a, log_b, err, int(info["niter"]) + 1, plan)
 
 
 def _logsumexp_rows(x: np.ndarray) -> np.ndarray:

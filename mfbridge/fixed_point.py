@@ -352,10 +352,6 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
                    f"{residual:.2e} (tolerance {options.tol:.1e}), marginal error "
                    f"{solved.sol.marginal_error:.2e}")
         warnings.warn(ConvergenceWarning(message), stacklevel=3)
-    if solved.sol.unresolved_mass > options.tol:
-        message += (f"; note: {solved.sol.unresolved_mass:.1e} of the endpoint mass lies where "
-                    f"the reference reaches it only below {entropic.RELIABLE:.0e} of its peak, so "
-                    "the flow in those far tails is approximate")
     solve_seconds = float(sum(h["seconds"] for h in history))
     return _result(bridge, solved, ref, outcome.v_bar, options, route, status, message,
                    len(history), residual, history,
