@@ -9,11 +9,12 @@ from __future__ import annotations
 
 import logging
 import sys
+import time
 from pathlib import Path
 from typing import Any
 
 from mfbridge.api import CONF_DIR, solve
-from mfbridge.errors import MFBridgeError
+from mfbridge.errors import InputError, MFBridgeError
 from mfbridge.fixed_point import Iteration
 from mfbridge.result import BridgeResult
 
@@ -27,25 +28,99 @@ def _progress(it: Iteration) -> None:
     )
 
 
-def run(cfg: Any, output_dir: str | Path) -> BridgeResult:
-    """Solve ``cfg``, write the result, the resolved config and figures into ``output_dir``."""
+def _job_label() -> str | None:
+    """``"#num override_dirname"`` of the running job of a Hydra multirun, else ``None``."""
+    try:
+        from hydra.core.hydra_config import HydraConfig
+    except ImportError:  # pragma: no cover - hydra is a dependency
+        return None
+    if not HydraConfig.initialized():
+        return None
+    hc = HydraConfig.get()
+    if hc.mode is None or hc.mode.name != "MULTIRUN":
+        return None
+    return f"#{hc.job.get('num')} {hc.job.override_dirname}".strip()
+
+
+class _LabelFilter(logging.Filter):
+    """Prefix every message with a job label (parallel jobs share one console)."""
+
+    def __init__(self, label: str) -> None:
+        super().__init__()
+        self.label = label
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        record.msg = f"[{self.label}] {record.msg}"
+        return True
+
+
+def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None = None
+        ) -> BridgeResult:
+    """Solve ``cfg``, write the result, the resolved config, the run record and figures into
+    ``output_dir``; return the result.
+
+    Resume: when ``output_dir`` already holds a complete run (see :mod:`mfbridge.records`) of the
+    same resolved config, nothing is recomputed and the *loaded* stored result is returned; a
+    complete run of a different config is an :class:`~mfbridge.errors.InputError`. A folder
+    left by a killed or failed run is recomputed. BLAS pools are capped at one thread for the
+    whole run (parallel sweep jobs must not fight over the cores). ``record_extra`` sets fields
+    of the :class:`~mfbridge.records.RunRecord` (e.g. ``replay_of``).
+    """
     from omegaconf import OmegaConf
+    from threadpoolctl import threadpool_limits
+
+    from mfbridge import records
+    from mfbridge.result import load
 
     out = Path(output_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    (out / "config.yaml").write_text(OmegaConf.to_yaml(cfg, resolve=True))
-    result = solve(cfg, callback=_progress)
-    result.save(out)
-    log.info("%s", result.message)
-    log.info("cost J = %.8g  (kinetic %.6g, drift %.6g, free-energy change %.6g)",
-             result.cost, result.cost_kinetic, result.cost_drift, result.cost_free_energy)
-    if cfg.get("figures", True):
-        from mfbridge.plotting import plot_result
+    config = OmegaConf.to_container(cfg, resolve=True)
+    label = _job_label()
+    label_filter = _LabelFilter(label) if label else None
+    if label_filter is not None:
+        log.addFilter(label_filter)
+    try:
+        if records.is_complete(out):
+            stored = records.read_record(out)
+            if stored.config != config:
+                raise InputError(
+                    f"{out} already holds a complete run of a different configuration; "
+                    "choose another output folder (hydra.run.dir / hydra.sweep.dir) or delete it"
+                )
+            log.info("complete result already in %s: skipped (delete the folder to recompute)",
+                     out.resolve())
+            return load(out)
+        out.mkdir(parents=True, exist_ok=True)
+        records.clear_marker(out)
+        record = records.new_record(config, blas_threads=1, **(record_extra or {}))
+        records.write_record(out, record)
+        (out / "config.yaml").write_text(OmegaConf.to_yaml(cfg, resolve=True))
+        start = time.perf_counter()
+        try:
+            with threadpool_limits(limits=1):
+                result = solve(cfg, callback=_progress)
+                result.save(out)
+                log.info("%s", result.message)
+                log.info("cost J = %.8g  (kinetic %.6g, drift %.6g, free-energy change %.6g)",
+                         result.cost, result.cost_kinetic, result.cost_drift,
+                         result.cost_free_energy)
+                if cfg.get("figures", True):
+                    from mfbridge.plotting import plot_result
 
-        for path in plot_result(result, out):
-            log.info("figure: %s", path)
-    log.info("run folder: %s", out.resolve())
-    return result
+                    for path in plot_result(result, out):
+                        log.info("figure: %s", path)
+        except BaseException as exc:
+            record.status, record.error = "failed", f"{type(exc).__name__}: {exc}"
+            record.finished, record.runtime_seconds = records.now(), time.perf_counter() - start
+            records.write_record(out, record)
+            raise
+        record.status, record.finished = result.status, records.now()
+        record.runtime_seconds = time.perf_counter() - start
+        records.write_record(out, record)
+        log.info("run folder: %s", out.resolve())
+        return result
+    finally:
+        if label_filter is not None:
+            log.removeFilter(label_filter)
 
 
 # Subcommands: ``mfbridge NAME ...`` runs ``mfbridge.commands.NAME.main(argv)``; anything else

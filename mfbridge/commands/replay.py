@@ -1,0 +1,147 @@
+"""``mfbridge replay RUN_DIR``: re-run a recorded run and compare with its stored result.
+
+The configuration is read from the run's ``record.json`` (the resolved config, so the replay
+does not depend on today's ``conf/``), solved again into a new folder, and compared with the
+stored result: the largest absolute difference of the density and the cost difference. The
+verdict is printed; the exit status is 0 when both are within the tolerance, 1 when not, 2 on
+an unusable record. Package versions that differ from the record are reported as warnings, and
+a stored result whose bytes differ from the hashes written at the end of the run is flagged.
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as _dt
+import logging
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from mfbridge.errors import InputError
+from mfbridge.result import BridgeResult
+
+DEFAULT_TOL = 1e-9
+
+
+@dataclass(frozen=True)
+class Comparison:
+    """Stored against replayed: largest |Δ density| (1/length^d), |Δ cost|, largest |Δ mean|."""
+
+    density: float
+    cost: float
+    mean: float
+    stored_cost: float
+    replayed_cost: float
+
+    @property
+    def identical(self) -> bool:
+        return self.density == 0.0 and self.cost == 0.0 and self.mean == 0.0
+
+    def within(self, tol: float) -> bool:
+        return max(self.density, self.cost, self.mean) <= tol
+
+
+def compare(stored: BridgeResult, replayed: BridgeResult) -> Comparison:
+    """Compare two :class:`~mfbridge.result.BridgeResult` objects (shape mismatch: infinite)."""
+
+    def maxdiff(a: np.ndarray, b: np.ndarray) -> float:
+        if a.shape != b.shape:
+            return float("inf")
+        diff = np.abs(np.asarray(a, dtype=float) - np.asarray(b, dtype=float))
+        return float(np.max(diff)) if diff.size else 0.0
+
+    return Comparison(
+        density=maxdiff(stored.density, replayed.density),
+        cost=abs(float(stored.cost) - float(replayed.cost)),
+        mean=maxdiff(stored.mean, replayed.mean),
+        stored_cost=float(stored.cost),
+        replayed_cost=float(replayed.cost),
+    )
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="mfbridge replay",
+        description="Re-run a recorded run from its logged config into a new folder and compare "
+                    "the new result with the stored one.",
+    )
+    parser.add_argument("run_dir", type=Path, help="a run folder written by mfbridge")
+    parser.add_argument("--out", type=Path, default=None,
+                        help="folder for the replay (default: replays/<run name>/<time>)")
+    parser.add_argument("--tol", type=float, default=DEFAULT_TOL,
+                        help=f"largest accepted absolute difference of density, mean and cost "
+                             f"(default {DEFAULT_TOL:g})")
+    parser.add_argument("--figures", action="store_true", help="also draw the replay's figures")
+    return parser
+
+
+def _version_warnings(recorded: dict[str, str | None]) -> list[str]:
+    from mfbridge.records import package_versions
+
+    current = package_versions()
+    return [f"{name} {recorded.get(name)} in the record, {current.get(name)} now"
+            for name in sorted(set(recorded) | set(current))
+            if recorded.get(name) != current.get(name)]
+
+
+def replay(run_dir: Path, out: Path | None, tol: float, figures: bool) -> int:
+    """Replay ``run_dir`` into ``out``; print the comparison and verdict; return the exit code."""
+    from omegaconf import OmegaConf
+
+    from mfbridge import records
+    from mfbridge.cli import run
+    from mfbridge.result import load
+
+    if not tol >= 0:
+        raise InputError(f"--tol must be a non-negative number, got {tol}")
+    record = records.read_record(run_dir)
+    marker = records.read_marker(run_dir)
+    if marker is None:
+        raise InputError(f"{run_dir} holds no completed run (no {records.COMPLETE_FILE}; "
+                         f"record status {record.status!r}): there is no result to compare with")
+    stored = load(run_dir)
+    changed = records.changed_files(run_dir, marker)
+    if out is None:
+        stamp = _dt.datetime.now().strftime("%Y-%m-%d_%H-%M-%S")
+        out = Path("replays") / run_dir.resolve().name / stamp
+    if out.exists() and any(out.iterdir()):
+        raise InputError(f"replay folder {out} exists and is not empty; choose another --out")
+
+    print(f"replaying {run_dir} into {out}")
+    for line in _version_warnings(record.versions):
+        print(f"warning: package version differs: {line}")
+    if changed:
+        print(f"warning: {', '.join(changed)} in {run_dir} changed after the run "
+              f"(SHA-256 differs from {records.COMPLETE_FILE})")
+    cfg = OmegaConf.create(record.config)
+    cfg.figures = bool(figures)
+    replayed = run(cfg, out, record_extra={"replay_of": str(run_dir.resolve()),
+                                           "overrides": record.overrides,
+                                           "choices": record.choices})
+    result = compare(stored, replayed)
+    print(f"density: max |stored - replayed| = {result.density:.3g}")
+    print(f"mean:    max |stored - replayed| = {result.mean:.3g}")
+    print(f"cost:    stored {result.stored_cost:.12g}, replayed {result.replayed_cost:.12g}, "
+          f"|difference| = {result.cost:.3g}")
+    if result.identical:
+        print(f"verdict: REPRODUCED bit for bit (tolerance {tol:g})")
+        return 0
+    if result.within(tol):
+        print(f"verdict: REPRODUCED within tolerance {tol:g} (not bit for bit)")
+        return 0
+    print(f"verdict: DIFFERENT: the replay differs from the stored result beyond tolerance "
+          f"{tol:g}")
+    return 1
+
+
+def main(argv: list[str]) -> int:
+    """Console entry: ``mfbridge replay RUN_DIR [--out DIR] [--tol TOL] [--figures]``."""
+    args = _parser().parse_args(argv)
+    logging.basicConfig(level=logging.WARNING, format="%(levelname)s %(name)s: %(message)s")
+    try:
+        return replay(args.run_dir, args.out, args.tol, args.figures)
+    except InputError as exc:
+        print(f"mfbridge replay: error: {exc}", file=sys.stderr)
+        return 2

@@ -1,0 +1,386 @@
+"""Run records: what a run folder says about how its result was made, and whether it is complete.
+
+Besides the result (``result.nc``, ``summary.json``, see :mod:`mfbridge.result`), a run folder
+written by :func:`mfbridge.cli.run` holds
+
+* ``record.json``: the resolved configuration, the command-line overrides and config-group
+  choices (when run through Hydra), versions of Python and the numerical packages, the git
+  commit of the mfbridge checkout (and whether it had uncommitted changes), seeds, SHA-256
+  hashes of input data files named in the config, start and finish times, the status, and the
+  error of a failed run;
+* ``complete.json``: the completion marker, written last, with SHA-256 hashes of the result,
+  the summary and the record. A folder without it (a run killed or failed midway) is never
+  taken for a finished run; a folder whose files no longer match its hashes was changed
+  after the run.
+
+Both are written atomically (temporary file, then rename). :class:`SweepProgress` is a Hydra
+callback that reports how many runs of a sweep have finished. Nothing here does numerics.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import hashlib
+import json
+import logging
+import platform
+import subprocess
+import sys
+from dataclasses import asdict, dataclass, field
+from importlib import metadata
+from pathlib import Path
+from typing import Any
+
+from mfbridge.errors import InputError
+from mfbridge.result import RESULT_FILE, SUMMARY_FILE, _atomic_write
+
+log = logging.getLogger("mfbridge")
+
+RECORD_FILE = "record.json"
+COMPLETE_FILE = "complete.json"
+RECORD_FORMAT = 1
+# Distribution names whose versions a record keeps (import name in brackets where it differs).
+PACKAGES: tuple[str, ...] = (
+    "mfbridge", "numpy", "scipy", "pot", "torch", "hydra-core", "omegaconf", "xarray",
+    "netcdf4", "threadpoolctl",
+)
+# Statuses of a run that wrote its result (a non-converged result is complete: re-running the
+# same config gives the same answer); "running" and "failed" runs have no completion marker.
+FINISHED = ("converged", "not_converged")
+
+
+@dataclass
+class RunRecord:
+    """The content of ``record.json``.
+
+    ``overrides`` are the Hydra task overrides (``["interaction.strength=2", ...]``) and
+    ``choices`` the selected option of every config group, both ``None`` outside Hydra;
+    ``inputs`` maps each data file named in the config to its absolute path and SHA-256;
+    ``git`` is ``{"commit": ..., "dirty": ...}`` or ``None`` when mfbridge is not in a checkout.
+    """
+
+    config: dict[str, Any]
+    overrides: list[str] | None = None
+    choices: dict[str, str] | None = None
+    job: dict[str, Any] | None = None
+    command: list[str] = field(default_factory=list)
+    versions: dict[str, str | None] = field(default_factory=dict)
+    git: dict[str, Any] | None = None
+    seeds: dict[str, int] = field(default_factory=dict)
+    inputs: dict[str, dict[str, str]] = field(default_factory=dict)
+    blas_threads: int | None = None
+    started: str = ""
+    finished: str | None = None
+    runtime_seconds: float | None = None
+    status: str = "running"
+    error: str | None = None
+    replay_of: str | None = None
+    format_version: int = RECORD_FORMAT
+
+
+@dataclass(frozen=True)
+class CompleteMarker:
+    """The content of ``complete.json``: when the run finished and the SHA-256 of its files."""
+
+    finished: str
+    status: str
+    sha256: dict[str, str]
+
+
+# ------------------------------------------------------------------------------ environment
+
+
+def now() -> str:
+    """The current time, ISO 8601 in UTC with seconds."""
+    return _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+
+
+def package_versions() -> dict[str, str | None]:
+    """Installed versions of Python and of :data:`PACKAGES` (``None`` when not installed)."""
+    out: dict[str, str | None] = {"python": platform.python_version()}
+    for name in PACKAGES:
+        try:
+            out[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            out[name] = None
+    return out
+
+
+def git_state(directory: str | Path | None = None) -> dict[str, Any] | None:
+    """``{"commit", "dirty"}`` of the git checkout holding ``directory`` (default: the mfbridge
+    package), or ``None`` when it is not in a checkout or git is not installed."""
+    where = str(directory or Path(__file__).resolve().parent)
+
+    def git(*args: str) -> str:
+        done = subprocess.run(["git", "-C", where, *args], capture_output=True, text=True,
+                              timeout=20, check=True)
+        return done.stdout.strip()
+
+    try:
+        commit = git("rev-parse", "HEAD")
+    except (OSError, subprocess.SubprocessError):
+        return None
+    try:
+        dirty: bool | None = bool(git("status", "--porcelain", "--untracked-files=no"))
+    except (OSError, subprocess.SubprocessError):
+        dirty = None
+    return {"commit": commit, "dirty": dirty}
+
+
+def sha256(path: str | Path) -> str:
+    """Hex SHA-256 of a file's bytes."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def input_files(config: Any, base: str | Path | None = None) -> dict[str, dict[str, str]]:
+    """Every string value of ``config`` (nested dicts and lists) that names an existing file
+    (relative names are taken from ``base``, default the working directory), with its absolute
+    path and SHA-256, keyed by the dotted config key."""
+    root = Path(base) if base is not None else Path.cwd()
+    found: dict[str, dict[str, str]] = {}
+
+    def walk(node: Any, key: str) -> None:
+        if isinstance(node, dict):
+            for k, v in node.items():
+                walk(v, f"{key}.{k}" if key else str(k))
+        elif isinstance(node, (list, tuple)):
+            for i, v in enumerate(node):
+                walk(v, f"{key}[{i}]")
+        elif isinstance(node, str) and node and "\n" not in node and len(node) < 4096:
+            path = Path(node).expanduser()
+            path = path if path.is_absolute() else root / path
+            try:
+                is_file = path.is_file()
+            except OSError:
+                is_file = False
+            if is_file:
+                found[key] = {"path": str(path.resolve()), "sha256": sha256(path)}
+
+    walk(config, "")
+    return found
+
+
+def hydra_job() -> tuple[list[str] | None, dict[str, str] | None, dict[str, Any] | None]:
+    """The task overrides, group choices and job description of the running Hydra job, or
+    ``(None, None, None)`` outside Hydra."""
+    try:
+        from hydra.core.hydra_config import HydraConfig
+    except ImportError:  # pragma: no cover - hydra is a dependency
+        return None, None, None
+    if not HydraConfig.initialized():
+        return None, None, None
+    from omegaconf import OmegaConf
+
+    hc = HydraConfig.get()
+    overrides = [str(o) for o in hc.overrides.task]
+    choices = {str(k): str(v) for k, v in OmegaConf.to_container(hc.runtime.choices).items()
+               if v is not None and not str(k).startswith("hydra/")}
+    job = {"name": hc.job.name, "mode": str(hc.mode.name) if hc.mode is not None else None,
+           "num": hc.job.get("num"), "override_dirname": hc.job.override_dirname}
+    return overrides, choices, job
+
+
+# ------------------------------------------------------------------------------ read / write
+
+
+def _write_json(path: Path, data: Any) -> None:
+    text = json.dumps(data, indent=2, sort_keys=False, default=str) + "\n"
+    _atomic_write(path, lambda tmp: Path(tmp).write_text(text))
+
+
+def new_record(config: dict[str, Any], **extra: Any) -> RunRecord:
+    """A record of a run of the resolved ``config`` starting now, with the environment filled
+    in (versions, git, input files, Hydra overrides when inside a Hydra job)."""
+    overrides, choices, job = hydra_job()
+    record = RunRecord(
+        config=config, overrides=overrides, choices=choices, job=job,
+        command=list(sys.argv), versions=package_versions(), git=git_state(),
+        seeds={},  # the solver is deterministic: no random numbers are drawn yet
+        inputs=input_files(config), started=now(),
+    )
+    for key, value in extra.items():
+        setattr(record, key, value)
+    return record
+
+
+def write_record(folder: str | Path, record: RunRecord) -> Path:
+    """Write ``record.json`` atomically; a finished record is followed by the marker."""
+    out = Path(folder)
+    _write_json(out / RECORD_FILE, asdict(record))
+    if record.status in FINISHED:
+        files = {name: sha256(out / name) for name in (RESULT_FILE, SUMMARY_FILE, RECORD_FILE)}
+        marker = CompleteMarker(finished=record.finished or now(), status=record.status,
+                                sha256=files)
+        _write_json(out / COMPLETE_FILE, asdict(marker))
+    return out / RECORD_FILE
+
+
+def clear_marker(folder: str | Path) -> None:
+    """Remove the completion marker (before a folder's result is rewritten)."""
+    (Path(folder) / COMPLETE_FILE).unlink(missing_ok=True)
+
+
+def _read_json(path: Path, what: str) -> dict[str, Any]:
+    try:
+        data = json.loads(path.read_text())
+    except FileNotFoundError:
+        raise InputError(f"{path.parent} has no {path.name}: not a recorded mfbridge run "
+                         f"folder ({what} missing)") from None
+    except (OSError, UnicodeDecodeError, ValueError) as exc:
+        raise InputError(f"{path} is corrupted ({what} is not valid JSON: {exc})") from exc
+    if not isinstance(data, dict):
+        raise InputError(f"{path} is corrupted ({what} is not a JSON object)")
+    return data
+
+
+def read_record(folder: str | Path) -> RunRecord:
+    """Read ``record.json`` of a run folder; a missing, unreadable or incomplete record is an
+    :class:`InputError` that says which."""
+    out = Path(folder)
+    if not out.is_dir():
+        raise InputError(f"no run folder at {out}")
+    data = _read_json(out / RECORD_FILE, "the run record")
+    version = data.get("format_version")
+    if version != RECORD_FORMAT:
+        raise InputError(f"{out / RECORD_FILE} has record format {version}, this mfbridge "
+                         f"reads format {RECORD_FORMAT}")
+    known = set(RunRecord.__dataclass_fields__)
+    if not isinstance(data.get("config"), dict):
+        raise InputError(f"{out / RECORD_FILE} is corrupted: it holds no configuration")
+    return RunRecord(**{k: v for k, v in data.items() if k in known})
+
+
+def read_marker(folder: str | Path) -> CompleteMarker | None:
+    """The completion marker of a run folder, or ``None`` when the run did not complete (or the
+    marker is unreadable)."""
+    path = Path(folder) / COMPLETE_FILE
+    if not path.is_file():
+        return None
+    try:
+        data = _read_json(path, "the completion marker")
+        return CompleteMarker(finished=str(data["finished"]), status=str(data["status"]),
+                              sha256=dict(data["sha256"]))
+    except (InputError, KeyError, TypeError, ValueError):
+        return None
+
+
+def changed_files(folder: str | Path, marker: CompleteMarker) -> list[str]:
+    """Files of a completed run whose bytes no longer match the hashes in its marker."""
+    out = Path(folder)
+    changed = []
+    for name, digest in marker.sha256.items():
+        path = out / name
+        if not path.is_file() or sha256(path) != digest:
+            changed.append(name)
+    return changed
+
+
+def is_complete(folder: str | Path) -> bool:
+    """Whether the folder holds a finished run whose files are as the run left them."""
+    marker = read_marker(folder)
+    return marker is not None and not changed_files(folder, marker)
+
+
+# ------------------------------------------------------------------------------ sweeps
+
+
+@dataclass(frozen=True)
+class RunEntry:
+    """One job folder of a sweep: its path, record (``None`` when unreadable) and whether it
+    completed; ``problem`` says what is wrong with an incomplete or failed one."""
+
+    folder: Path
+    record: RunRecord | None
+    complete: bool
+    problem: str | None = None
+
+
+def scan_sweep(sweep_dir: str | Path) -> list[RunEntry]:
+    """Every job folder under ``sweep_dir`` (a folder with a Hydra ``.hydra/`` record or a run
+    record), sorted by path."""
+    root = Path(sweep_dir)
+    folders = {p.parent for p in root.rglob(RECORD_FILE)}
+    folders |= {p.parent for p in root.rglob(".hydra") if p.is_dir() and p.parent != root}
+    entries = []
+    for folder in sorted(folders):
+        try:
+            record: RunRecord | None = read_record(folder)
+        except InputError as exc:
+            entries.append(RunEntry(folder, None, False, str(exc)))
+            continue
+        complete = is_complete(folder)
+        problem = None
+        if not complete:
+            if record.status == "failed":
+                problem = f"failed: {record.error}"
+            elif record.status == "running":
+                problem = "did not finish (killed or still running: no completion marker)"
+            else:
+                problem = "files changed after the run (hashes differ from complete.json)"
+        entries.append(RunEntry(folder, record, complete, problem))
+    return entries
+
+
+def expected_jobs(config: Any) -> list[list[str]] | None:
+    """The override lists of the jobs a basic-sweeper multirun launches, from the task
+    overrides of its (Hydra) ``config``; ``None`` when they cannot be worked out."""
+    try:
+        from hydra._internal.core_plugins.basic_sweeper import BasicSweeper
+        from hydra.core.override_parser.overrides_parser import OverridesParser
+
+        parsed = OverridesParser.create().parse_overrides(list(config.hydra.overrides.task))
+        return [list(job) for batch in BasicSweeper.split_arguments(parsed, None)
+                for job in batch]
+    except Exception:  # another sweeper, or a Hydra without these internals
+        return None
+
+
+def _count_jobs(config: Any) -> int | None:
+    jobs = expected_jobs(config)
+    return None if jobs is None else len(jobs)
+
+
+try:
+    from hydra.experimental.callback import Callback as _Callback
+except ImportError:  # pragma: no cover - hydra is a dependency
+    _Callback = object  # type: ignore[assignment,misc]
+
+
+class SweepProgress(_Callback):  # type: ignore[misc,valid-type]
+    """Hydra callback: after each job, log how many runs of the sweep are complete; at the end
+    of a multirun, log a summary (complete, not converged, failed) and the collect command."""
+
+    JOBS_FILE = "sweep.json"
+
+    def on_multirun_start(self, config: Any, **kwargs: Any) -> None:
+        sweep_dir = Path(config.hydra.sweep.dir)
+        sweep_dir.mkdir(parents=True, exist_ok=True)
+        _write_json(sweep_dir / self.JOBS_FILE, {"jobs": _count_jobs(config), "started": now()})
+
+    def on_job_end(self, config: Any, job_return: Any = None, **kwargs: Any) -> None:
+        if str(config.hydra.mode) != "RunMode.MULTIRUN":
+            return
+        sweep_dir = Path(config.hydra.sweep.dir)
+        done = sum(entry.complete for entry in scan_sweep(sweep_dir))
+        try:
+            total = json.loads((sweep_dir / self.JOBS_FILE).read_text()).get("jobs")
+        except (OSError, ValueError):
+            total = None
+        of = f" of {total}" if total else ""
+        log.info("sweep progress: %d%s runs complete in %s", done, of, sweep_dir)
+
+    def on_multirun_end(self, config: Any, **kwargs: Any) -> None:
+        sweep_dir = Path(config.hydra.sweep.dir)
+        entries = scan_sweep(sweep_dir)
+        complete = [e for e in entries if e.complete]
+        not_converged = [e for e in complete if e.record and e.record.status != "converged"]
+        log.info("sweep finished: %d of %d runs complete (%d not converged) in %s",
+                 len(complete), len(entries), len(not_converged), sweep_dir)
+        for entry in entries:
+            if not entry.complete:
+                log.warning("incomplete run %s: %s", entry.folder, entry.problem)
+        log.info("collect with: mfbridge collect %s", sweep_dir)

@@ -1,0 +1,220 @@
+"""Sweeps: the joblib and submitit launchers, run records, resume after a kill, and collect."""
+
+from __future__ import annotations
+
+import csv
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+import xarray as xr
+
+import mfbridge
+from mfbridge import records
+from mfbridge.commands import collect
+from mfbridge.result import RESULT_FILE, SUMMARY_FILE
+
+CONSOLE_SCRIPT = Path(sys.executable).with_name("mfbridge")
+SMALL = ["grid.shape=32", "steps=8", "figures=false"]
+STRENGTHS = (0, 1, 2)
+
+
+def _env() -> dict[str, str]:
+    env = {k: v for k, v in os.environ.items() if k != "HYDRA_FULL_ERROR"}
+    env["OPENBLAS_NUM_THREADS"] = "1"
+    return env
+
+
+def _sweep(sweep_dir: Path, *args: str, timeout: float = 600) -> subprocess.CompletedProcess[str]:
+    command = [str(CONSOLE_SCRIPT), "-m", *args, f"hydra.sweep.dir={sweep_dir}"]
+    return subprocess.run(command, cwd=sweep_dir.parent, env=_env(), text=True, timeout=timeout,
+                          stdout=subprocess.PIPE, stderr=subprocess.STDOUT, check=False)
+
+
+def _job(sweep_dir: Path, strength: int, figures: bool = False) -> Path:
+    name = f"figures={figures},grid.shape=32,interaction.strength={strength},steps=8"
+    return sweep_dir / name
+
+
+@pytest.fixture(scope="module")
+def joblib_sweep(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str]:
+    sweep_dir = tmp_path_factory.mktemp("joblib") / "sweep"
+    values = ",".join(map(str, STRENGTHS))
+    done = _sweep(sweep_dir, f"interaction.strength={values}", *SMALL, "hydra.launcher.n_jobs=2")
+    assert done.returncode == 0, done.stdout
+    return sweep_dir, done.stdout
+
+
+@pytest.fixture(scope="module")
+def collected(joblib_sweep: tuple[Path, str]) -> Path:
+    sweep_dir, _ = joblib_sweep
+    assert collect.main([str(sweep_dir)]) == 0
+    return sweep_dir / "collected"
+
+
+def _table(path: Path) -> list[dict[str, str]]:
+    with open(path, newline="") as handle:
+        return list(csv.DictReader(handle))
+
+
+def test_sweep_runs_through_the_joblib_launcher(joblib_sweep: tuple[Path, str]) -> None:
+    sweep_dir, output = joblib_sweep
+    assert "Joblib.Parallel(n_jobs=2" in output
+    assert f"sweep progress: {len(STRENGTHS)} of {len(STRENGTHS)} runs complete" in output
+    assert "sweep finished: 3 of 3 runs complete (" in output
+    assert "outer iteration" in output  # every job shows its progress
+    for strength in STRENGTHS:
+        assert records.is_complete(_job(sweep_dir, strength))
+
+
+def test_table_costs_equal_single_runs(collected: Path) -> None:
+    rows = _table(collected / "runs.csv")
+    assert len(rows) == len(STRENGTHS)
+    assert [float(r["interaction.strength"]) for r in rows] == list(STRENGTHS)
+    for row in rows:
+        strength = row["interaction.strength"]
+        single = mfbridge.solve(mfbridge.compose([*SMALL, f"interaction.strength={strength}"]))
+        # same code, same config, one BLAS thread in both: the numbers agree bit for bit
+        assert float(row["cost"]) == single.cost, strength
+        assert float(row["cost_kinetic"]) == single.cost_kinetic
+        assert row["status"] == single.status
+        assert int(row["iterations"]) == single.iterations
+    costs = [float(r["cost"]) for r in rows]
+    assert len(set(costs)) == len(costs)  # the interaction changes the bridge
+
+
+def test_combined_dataset_has_the_swept_dimension(collected: Path,
+                                                  joblib_sweep: tuple[Path, str]) -> None:
+    sweep_dir, _ = joblib_sweep
+    with xr.open_dataset(collected / "sweep.nc") as ds:
+        assert ds["density"].dims == ("interaction.strength", "t", "x")
+        assert list(ds["interaction.strength"].values) == list(STRENGTHS)
+        assert ds["cost"].dims == ("interaction.strength",)
+        for strength in STRENGTHS:
+            stored = mfbridge.load(_job(sweep_dir, strength))
+            sel = ds.sel({"interaction.strength": strength})
+            assert float(sel["cost"]) == stored.cost
+            assert (sel["density"].values == stored.density).all()
+    for name in ("cost.png", "mean_paths.png", "densities.png"):
+        assert (collected / name).read_bytes()[:4] == b"\x89PNG", name
+
+
+def test_run_record_contents(joblib_sweep: tuple[Path, str]) -> None:
+    sweep_dir, _ = joblib_sweep
+    folder = _job(sweep_dir, 1)
+    record = records.read_record(folder)
+    assert "interaction.strength=1" in (record.overrides or [])
+    assert record.choices is not None and record.choices["interaction"] == "gaussian"
+    assert record.config["interaction"]["strength"] == 1
+    assert record.status == mfbridge.load(folder).status
+    assert record.seeds == {}
+    for name in ("python", "numpy", "scipy", "pot", "torch", "hydra-core", "mfbridge"):
+        assert record.versions[name], name
+    assert record.versions["numpy"] == __import__("numpy").__version__
+    if record.git is not None:
+        assert len(record.git["commit"]) == 40
+    marker = records.read_marker(folder)
+    assert marker is not None
+    assert marker.sha256[RESULT_FILE] == records.sha256(folder / RESULT_FILE)
+    assert set(marker.sha256) == {RESULT_FILE, SUMMARY_FILE, records.RECORD_FILE}
+    assert "${" not in (folder / "config.yaml").read_text()
+
+
+def test_input_data_files_are_hashed(tmp_path: Path) -> None:
+    data = tmp_path / "snapshot.npy"
+    data.write_bytes(b"observed density")
+    found = records.input_files({"endpoints": {"initial": {"path": str(data)}},
+                                 "solver": {"method": "optimal"}, "names": ["snapshot.npy"]},
+                                base=tmp_path)
+    # sha256 of b"observed density", computed independently with hashlib
+    digest = __import__("hashlib").sha256(b"observed density").hexdigest()
+    assert found == {"endpoints.initial.path": {"path": str(data), "sha256": digest},
+                     "names[0]": {"path": str(data), "sha256": digest}}
+
+
+def test_git_state_outside_a_checkout_and_without_git(tmp_path: Path,
+                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    assert records.git_state(tmp_path) is None
+    monkeypatch.setenv("PATH", str(tmp_path))  # no git executable at all
+    assert records.git_state() is None
+
+
+def test_failed_run_is_listed_not_dropped(tmp_path: Path) -> None:
+    sweep_dir = tmp_path / "sweep"
+    _sweep(sweep_dir, "noise=0.8,-1", "grid.shape=32", "steps=8", "figures=false",
+           "hydra.launcher.n_jobs=2")
+    written = collect.collect(sweep_dir, figures=False)
+    rows = {float(r["noise"]): r for r in _table(written["table"])}
+    assert rows[-1.0]["status"] == "failed"
+    assert "noise must be a positive finite number" in rows[-1.0]["problem"]
+    assert rows[-1.0]["cost"] == ""
+    # both jobs have a row, whatever became of the other (finished, killed, never started)
+    assert set(rows) == {0.8, -1.0}
+    assert rows[0.8]["status"] in ("converged", "incomplete", "missing")
+
+
+def test_collect_refuses_a_folder_without_runs(tmp_path: Path,
+                                               capsys: pytest.CaptureFixture[str]) -> None:
+    assert collect.main([str(tmp_path)]) == 2
+    assert "holds no run folders" in capsys.readouterr().err
+    assert collect.main([str(tmp_path / "nope")]) == 2
+    assert "no sweep folder" in capsys.readouterr().err
+
+
+def test_killed_sweep_resumes_only_unfinished_runs(tmp_path: Path) -> None:
+    sweep_dir = tmp_path / "sweep"
+    args = ["-m", "interaction.strength=0,1,2", *SMALL[:2], "figures=true",
+            "hydra.launcher.n_jobs=1", f"hydra.sweep.dir={sweep_dir}"]
+    folders = {s: _job(sweep_dir, s, figures=True) for s in STRENGTHS}
+    proc = subprocess.Popen([str(CONSOLE_SCRIPT), *args], cwd=tmp_path, env=_env(),
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                            start_new_session=True)
+    try:
+        deadline = time.monotonic() + 300
+        while not (folders[0] / records.COMPLETE_FILE).exists():
+            assert proc.poll() is None, "the sweep ended before it could be killed"
+            assert time.monotonic() < deadline
+            time.sleep(0.02)
+    finally:
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)  # the sweep and its worker processes
+        proc.wait()
+    finished = {s: records.read_marker(folders[s]) for s in STRENGTHS}
+    assert finished[0] is not None
+    unfinished = [s for s, m in finished.items() if m is None]
+    if not unfinished:
+        pytest.skip("every run finished before the kill landed")
+    started = {s: records.read_record(folders[s]).started for s, m in finished.items()
+               if m is not None}
+    for s in unfinished:  # a killed run leaves no result that looks complete
+        assert not records.is_complete(folders[s])
+    done = subprocess.run([str(CONSOLE_SCRIPT), *args], cwd=tmp_path, env=_env(), text=True,
+                          stdout=subprocess.PIPE, stderr=subprocess.STDOUT, timeout=600,
+                          check=False)
+    assert done.returncode == 0, done.stdout
+    assert done.stdout.count("skipped (delete the folder to recompute)") == len(started)
+    for s, marker in finished.items():
+        assert records.is_complete(folders[s])
+        if marker is not None:  # untouched: same marker, same record
+            assert records.read_marker(folders[s]) == marker
+            assert records.read_record(folders[s]).started == started[s]
+    rows = _table(collect.collect(sweep_dir, figures=False)["table"])
+    assert len(rows) == 3
+    assert all(r["status"] in ("converged", "not_converged") for r in rows)
+
+
+def test_submitit_local_launcher(tmp_path: Path) -> None:
+    pytest.importorskip("hydra_plugins.hydra_submitit_launcher")
+    sweep_dir = tmp_path / "sweep"
+    done = _sweep(sweep_dir, "hydra/launcher=submitit_local", "interaction.strength=0,2",
+                  *SMALL)
+    assert done.returncode == 0, done.stdout
+    assert (sweep_dir / ".submitit").is_dir()
+    rows = _table(collect.collect(sweep_dir, figures=False)["table"])
+    assert [float(r["interaction.strength"]) for r in rows] == [0.0, 2.0]
+    single = mfbridge.solve(mfbridge.compose([*SMALL, "interaction.strength=2"]))
+    assert float(rows[1]["cost"]) == single.cost
