@@ -15,6 +15,7 @@ from mfbridge.errors import ConvergenceWarning, InputError, MFBridgeError
 from mfbridge.fixed_point import Iteration, SolverOptions, solve_bridge
 from mfbridge.grid import Grid
 from mfbridge.linear_quadratic import LQBridge, lq_bridge
+from mfbridge.particles import check
 from mfbridge.problem import BridgeProblem
 from mfbridge.result import BridgeResult, load
 
@@ -34,6 +35,7 @@ __all__ = [
     "SolverOptions",
     "UniformBox",
     "build_problem",
+    "check",
     "compose",
     "load",
     "lq_bridge",

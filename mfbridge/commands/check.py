@@ -1,0 +1,130 @@
+"""``mfbridge check RUN_DIR``: drive N interacting particles with a saved bridge's control.
+
+Loads the result in RUN_DIR (refusing, with exit code 2, a folder that is missing, incomplete or
+from another format version), rebuilds the model from its resolved config, runs
+:func:`mfbridge.particles.check`, prints the convergence table and writes ``check.json`` and the
+figures ``check_histograms.png``, ``check_clouds.png``, ``check_convergence.png`` into RUN_DIR
+(each written to a temporary file and renamed).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import sys
+import tempfile
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+from mfbridge.errors import InputError, MFBridgeError
+
+CHECK_FILE = "check.json"
+FIGURES = ("check_histograms.png", "check_clouds.png", "check_convergence.png")
+
+
+def model_from_config(config: dict[str, Any]) -> tuple[Any, Any]:
+    """The confinement and interaction of a resolved run config (``_target_`` entries),
+    instantiated by Hydra (imported here, lazily)."""
+    from hydra.utils import instantiate
+    from omegaconf import OmegaConf
+
+    built = []
+    for group in ("confinement", "interaction"):
+        if not isinstance(config, dict) or group not in config:
+            raise InputError(f"the run's config has no {group!r} entry: cannot rebuild the model")
+        try:
+            built.append(instantiate(OmegaConf.create(config[group])))
+        except InputError:
+            raise
+        except Exception as exc:
+            cause = exc.__cause__ or exc
+            raise InputError(f"cannot rebuild the {group} of the run: {cause}") from exc
+    return built[0], built[1]
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="mfbridge check",
+        description="Simulate N interacting particles driven by the computed control of a run "
+                    "and compare them with the bridge (W1 distances, moments, Girsanov cost).")
+    parser.add_argument("run_dir", metavar="RUN_DIR", help="run folder holding result.nc")
+    parser.add_argument("--particles", type=int, nargs="+", default=[250, 1000, 4000],
+                        metavar="N", help="particle numbers (default: 250 1000 4000)")
+    parser.add_argument("--seed", type=int, nargs="+", default=[0, 1, 2, 3], metavar="S",
+                        help="seeds, one repetition each (default: 0 1 2 3)")
+    parser.add_argument("--substeps", type=int, default=None,
+                        help="Euler-Maruyama sub-steps per grid step (default: from the drift's "
+                             "Lipschitz constant)")
+    parser.add_argument("--pairs", choices=("auto", "exact", "grid"), default="auto",
+                        help="pair forces: exact O(N^2) sums or grid convolution (default: auto)")
+    parser.add_argument("--no-figures", action="store_true", help="write no figures")
+    return parser
+
+
+def _atomic_write(target: Path, write: Callable[[str], None]) -> None:
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=target.suffix,
+                               dir=target.parent)
+    os.close(fd)
+    try:
+        mask = os.umask(0)
+        os.umask(mask)
+        os.chmod(tmp, 0o666 & ~mask)
+        write(tmp)
+        os.replace(tmp, target)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def _clean(value: Any) -> Any:
+    """JSON cannot hold NaN: write null instead."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, dict):
+        return {k: _clean(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_clean(v) for v in value]
+    return value
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the check; 0 on success, 2 on a user error (message on stderr)."""
+    args = _parser().parse_args(argv)
+    try:
+        return _main(args)
+    except MFBridgeError as exc:
+        print(f"mfbridge check: error: {exc}", file=sys.stderr)
+        return 2
+
+
+def _main(args: argparse.Namespace) -> int:
+    from mfbridge.particles import check
+    from mfbridge.result import load
+
+    folder = Path(args.run_dir)
+    result = load(folder)
+    if not result.config:
+        raise InputError(f"{folder} records no resolved config: cannot rebuild the model "
+                         "(use mfbridge.check(result, confinement=..., interaction=...))")
+    confinement, interaction = model_from_config(result.config)
+    report = check(result, confinement, interaction, n_particles=args.particles,
+                   seeds=args.seed, substeps=args.substeps, pair_mode=args.pairs)
+    print(report.table_text())
+    data = _clean(report.to_dict())
+    data["run_dir"] = str(folder.resolve())
+    text = json.dumps(data, indent=2)
+    _atomic_write(folder / CHECK_FILE, lambda tmp: Path(tmp).write_text(text + "\n"))
+    print(f"wrote {folder / CHECK_FILE}")
+    if not args.no_figures:
+        from mfbridge.check_plots import plot_check
+
+        for path in plot_check(report, folder, writer=_atomic_write):
+            print(f"figure: {path}")
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
