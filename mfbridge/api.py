@@ -81,8 +81,21 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None) -> Brid
 
     problem = build_problem(cfg)
     options = _build(cfg, "solver")
+    if type(options).__name__ == "DirectOptions":
+        from mfbridge.direct import DirectOptions, solve_direct
+
+        if isinstance(options, DirectOptions):
+            progress = None
+            if callback is not None:
+                def progress(it: int, cost: float, grad: float) -> None:
+                    if it % 100 == 0:
+                        callback(Iteration(it, grad, 0.0, 0, 0.0))
+            result = solve_direct(problem, options, progress)
+            result.config = OmegaConf.to_container(cfg, resolve=True)
+            return result
     if not isinstance(options, SolverOptions):
-        raise InputError("the solver group must build a mfbridge.fixed_point.SolverOptions")
+        raise InputError("the solver group must build a mfbridge.fixed_point.SolverOptions or "
+                         "a mfbridge.direct.DirectOptions")
     result = solve_bridge(problem, options, callback)
     result.config = OmegaConf.to_container(cfg, resolve=True)
     return result

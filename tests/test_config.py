@@ -18,6 +18,7 @@ from omegaconf import open_dict
 import mfbridge
 from mfbridge import BridgeProblem, Gaussian, Grid, InputError, SolverOptions, compose
 from mfbridge.api import CONF_DIR, GROUPS
+from mfbridge.direct import DirectOptions
 from mfbridge.potentials import Harmonic, HarmonicInteraction
 
 
@@ -83,7 +84,7 @@ def test_every_option_composes_and_builds(group: str, option: str) -> None:
     if group == "grid":
         assert problem.grid.dim == _grid_dim(option)
     options = instantiate(cfg.solver)
-    assert isinstance(options, SolverOptions)
+    assert isinstance(options, (SolverOptions, DirectOptions))
 
 
 def test_default_solver_config_matches_python_defaults() -> None:

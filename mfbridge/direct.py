@@ -1,0 +1,651 @@
+r"""Direct solver: minimise the discretised action with a density-dependent mobility.
+
+The action (see :mod:`mfbridge.mobility`) with noise σ, mobility χ, diffusion D,
+:math:`\Phi = U + W*\rho`:
+
+.. math::
+
+    J(\rho, j) = \frac{1}{2\sigma^2}\int_0^T\!\!\int
+        \frac{|j - b[\rho]|^2}{\chi(\rho)}\,dx\,dt,\qquad
+    b[\rho] = -\tfrac{\sigma^2}{2}D(\rho)\nabla\rho - \chi(\rho)\nabla\Phi,\qquad
+    \partial_t\rho + \nabla\cdot j = 0 .
+
+For χ = ρ, D = 1 this is the main solver's J (:mod:`mfbridge.fixed_point`), which makes this
+solver an independent cross-check of it.
+
+**Discretisation** (grid of n cells per axis, spacing :math:`h_a`, cell volume
+:math:`|c| = \prod_a h_a`; K time steps of length Δt):
+
+* densities :math:`\rho_k` (1/length^d) at the nodes :math:`t_k = k\Delta t`, shape
+  (K+1, *grid.shape), with :math:`\rho_0 = M\mu/|c|`, :math:`\rho_K = M\nu/|c|` (M =
+  ``total_mass``, μ, ν the problem's normalised cell masses);
+* fluxes :math:`F_{k+1/2}` (mass per time through each interior face; walls carry none) on each
+  step, tied to the densities *exactly* by the discrete continuity equation
+  :math:`|c|(\rho_{k+1} - \rho_k)/\Delta t + \mathrm{div}_h F_{k+1/2} = 0`:
+
+  - 1D: :math:`F_{k+1/2,i+1/2} = -(C_{k+1,i} - C_{k,i})/\Delta t` with
+    :math:`C_{k,i} = \sum_{l\le i}|c|\rho_{k,l}` the mass left of the face (the smaller tail is
+    differenced, so tails keep their relative precision);
+  - 2D: :math:`F = F^\phi + F^\psi`, a potential part :math:`F^\phi_a = \phi_{lo} - \phi_{hi}`
+    with :math:`-L\phi = -|c|(\rho_{k+1} - \rho_k)/\Delta t` (L the graph Laplacian with no-flux
+    walls, solved exactly in its cosine eigenbasis) plus the discrete curl of a stream function
+    ψ on interior vertices (divergence-free, zero at walls); ψ is a free variable;
+
+* on a face along axis a, between cells lo and hi, with midpoint-in-time densities
+  :math:`\bar\rho = (\rho_k + \rho_{k+1})/2` and :math:`\rho_f = (\bar\rho_{lo} + \bar\rho_{hi})/2`:
+  :math:`j = F/(|c|/h_a)`,
+  :math:`b = -\tfrac{\sigma^2}{2}D(\rho_f)(\bar\rho_{hi} - \bar\rho_{lo})/h_a -
+  \chi(\rho_f)(\bar\Phi_{hi} - \bar\Phi_{lo})/h_a`, :math:`\bar\Phi = U + W\star(|c|\bar\rho)`;
+* :math:`J = \frac{\Delta t}{2\sigma^2}\sum_k\sum_a\sum_{faces}|c|\,(j - b)^2/\chi(\rho_f)`.
+
+Second order in h and Δt; for concave χ and constant D (and U = W = 0) it is jointly convex in
+(ρ, F), because :math:`(\text{linear})^2/\chi(\text{linear})` is.
+
+**Free variables**: the interior densities as :math:`\rho_k = M\,\mathrm{softmax}(z_k)/|c|`
+(positive, mass exactly M) and, in 2D, ψ. Gradients by ``torch.autograd`` (float64);
+minimisation by L-BFGS with a backtracking line search that rejects any step leaving the
+mobility's domain (e.g. ρ ≥ 1 for exclusion). Warm start: McCann's displacement interpolation
+(1D quantile interpolation; 2D from the exact plan of ``ot.emd``), blended with 1e-3 of the linear
+interpolation to keep every cell positive; the linear interpolation is used when the
+displacement interpolation leaves the domain.
+
+**Mass scale**: :class:`~mfbridge.problem.BridgeProblem` stores normalised masses; the
+mobility and the mean field see densities of total mass M = ``DirectOptions.total_mass``
+(for exclusion: the occupation per site, so M must keep the endpoints below 1). The returned
+:class:`~mfbridge.result.BridgeResult` keeps the package's convention: ``density`` is the
+normalised density (the occupation is ``total_mass × density``), while ``cost``, its parts and
+``free_energy`` are those of the mass-M profile (for walkers without interaction, M times the
+per-particle values). ``log_forward``, ``log_backward`` and ``correction`` are NaN: no
+Schrödinger potentials exist here. ``control`` is the velocity :math:`(j - b)/\rho_f`
+interpolated to cell centres and time nodes (for walkers, σ²∇ψ of the main solver).
+"""
+
+from __future__ import annotations
+
+import math
+import time
+import warnings
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from threadpoolctl import threadpool_limits
+
+from mfbridge import observables
+from mfbridge.errors import ConvergenceWarning, InputError, unknown_name
+from mfbridge.grid import Grid
+from mfbridge.mobility import Mobility, Walkers
+from mfbridge.problem import BridgeProblem
+from mfbridge.reference import PairField, faces
+from mfbridge.result import BridgeResult
+
+WARM_STARTS = ("displacement", "linear")
+MAX_DIM = 2
+OT_MAX_CELLS = 4096
+
+
+@dataclass(frozen=True)
+class DirectOptions:
+    """Options of the direct solver.
+
+    * ``mobility``: a :class:`~mfbridge.mobility.Mobility` (default independent walkers);
+    * ``total_mass``: M, the mass of the density profiles the mobility sees (see the module
+      docstring; e.g. the mean occupation times the box volume for exclusion);
+    * ``max_iter``: L-BFGS iterations; ``memory``: L-BFGS history depth;
+    * ``tol``: stop when the cost decreased by less than ``tol`` × J over the last ``window``
+      iterations; ``gtol``: or when the largest gradient entry is below it;
+    * ``warm_start``: ``"displacement"`` (McCann interpolation) or ``"linear"``.
+    """
+
+    mobility: Mobility = field(default_factory=Walkers)
+    total_mass: float = 1.0
+    max_iter: int = 20000
+    tol: float = 1e-9
+    gtol: float = 1e-10
+    memory: int = 20
+    window: int = 20
+    warm_start: str = "displacement"
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.mobility, Mobility):
+            raise InputError(f"direct solver option mobility must be a mfbridge.mobility."
+                             f"Mobility, got {self.mobility!r}")
+        if self.warm_start not in WARM_STARTS:
+            raise unknown_name("warm_start", self.warm_start, WARM_STARTS)
+        checks = [
+            ("total_mass", _is_number(self.total_mass) and math.isfinite(self.total_mass)
+             and self.total_mass > 0),
+            ("max_iter", _is_int(self.max_iter) and self.max_iter >= 1),
+            ("memory", _is_int(self.memory) and self.memory >= 1),
+            ("window", _is_int(self.window) and self.window >= 1),
+            ("tol", _is_number(self.tol) and self.tol >= 0),
+            ("gtol", _is_number(self.gtol) and self.gtol >= 0),
+        ]
+        for name, ok in checks:
+            if not ok:
+                raise InputError(f"direct solver option {name} has an invalid value "
+                                 f"{getattr(self, name)!r}")
+        object.__setattr__(self, "total_mass", float(self.total_mass))
+
+
+def _is_number(v: Any) -> bool:
+    return isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, bool)
+
+
+def _is_int(v: Any) -> bool:
+    return _is_number(v) and float(v) == int(v)
+
+
+# --------------------------------------------------------------------------- the action
+
+
+class DirectAction:
+    """The discretised action of ``problem`` with ``mobility`` at mass ``total_mass``.
+
+    Works on torch float64 tensors: :meth:`value` takes the full density flow (K+1, *shape) in
+    1/length^d (total mass M per slice) and, in 2D, a stream function (K, n0-1, n1-1) (mass per
+    time), and returns J (a 0-d tensor) — see the module docstring for the formulas.
+    """
+
+    def __init__(self, problem: BridgeProblem, mobility: Mobility | None = None,
+                 total_mass: float = 1.0) -> None:
+        import torch
+
+        grid = problem.grid
+        if grid.dim > MAX_DIM:
+            raise InputError(f"the direct solver handles 1D and 2D grids, got a {grid.dim}D grid")
+        self.problem = problem
+        self.grid = grid
+        self.mobility = mobility or Walkers()
+        self.mass = float(total_mass)
+        self.vol = grid.cell_volume
+        self.dt = problem.dt
+        self.noise = problem.noise
+        self.shape = grid.shape
+        u = np.asarray(problem.confinement.value(grid.points), dtype=float)
+        if u.shape != grid.shape or not np.all(np.isfinite(u)):
+            raise InputError("the confinement potential is not finite at every grid point")
+        self.confinement_np = u
+        self.confinement = torch.from_numpy(u)
+        try:
+            self.pair_np = PairField(grid, problem.interaction)
+        except ValueError as exc:
+            raise InputError(str(exc)) from exc
+        self.interacting = not self.pair_np.is_zero
+        if self.interacting:
+            offsets = [np.arange(-(n - 1), n) * h
+                       for n, h in zip(grid.shape, grid.spacing, strict=True)]
+            mesh = np.stack(np.meshgrid(*offsets, indexing="ij"), axis=-1)
+            table = torch.from_numpy(np.asarray(problem.interaction.value(mesh), dtype=float))
+            self._fft_shape = tuple(2 * n - 1 for n in grid.shape)
+            self._axes = tuple(range(-grid.dim, 0))
+            self._table_hat = torch.fft.rfftn(table, s=self._fft_shape, dim=self._axes)
+        self.rho0 = torch.from_numpy(self.mass * problem.initial / self.vol)
+        self.rho1 = torch.from_numpy(self.mass * problem.final / self.vol)
+        if grid.dim == 2:
+            # cosine eigenbasis of the 1D no-flux graph Laplacian along each axis
+            self._bases = []
+            for n in grid.shape:
+                i = np.arange(n)
+                vec = np.cos(np.pi * np.outer(i + 0.5, i) / n)
+                vec /= np.linalg.norm(vec, axis=0)
+                self._bases.append((torch.from_numpy(vec),
+                                    torch.from_numpy(2.0 - 2.0 * np.cos(np.pi * i / n))))
+            lam = self._bases[0][1][:, None] + self._bases[1][1][None, :]
+            inv = torch.where(lam > 0, 1.0 / torch.where(lam > 0, lam, 1.0), 0.0)
+            self._inv_lap = inv
+
+    # ---------------------------------------------------------------- pieces
+    def mean_field(self, rho: Any) -> Any:
+        """Φ = U + W ⋆ (|c|ρ) for densities of shape (..., *shape)."""
+        import torch
+
+        if not self.interacting:
+            return self.confinement.expand_as(rho)
+        p = rho * self.vol
+        full = torch.fft.irfftn(torch.fft.rfftn(p, s=self._fft_shape, dim=self._axes)
+                                * self._table_hat, s=self._fft_shape, dim=self._axes)
+        index = (Ellipsis, *(slice(n - 1, 2 * n - 1) for n in self.shape))
+        return self.confinement + full[index]
+
+    def fluxes(self, rho: Any, stream: Any = None) -> tuple[Any, ...]:
+        """Face fluxes F (mass per time) on every step satisfying continuity exactly; one array
+        per axis, shape (K, *shape) with that axis one shorter."""
+        import torch
+
+        m = rho * self.vol
+        if self.grid.dim == 1:
+            left = torch.cumsum(m, dim=1)[:, :-1]
+            right = torch.flip(torch.cumsum(torch.flip(m, dims=[1]), dim=1), dims=[1])[:, 1:]
+            small_left = 0.5 * (left[1:] + left[:-1]) < 0.5 * self.mass
+            flux = torch.where(small_left, -(left[1:] - left[:-1]) / self.dt,
+                               (right[1:] - right[:-1]) / self.dt)
+            return (flux,)
+        source = -(m[1:] - m[:-1]) / self.dt  # outflow each cell must have, (K, n0, n1)
+        v0, _ = self._bases[0]
+        v1, _ = self._bases[1]
+        hat = v0.T @ source @ v1
+        phi = v0 @ (hat * self._inv_lap) @ v1.T
+        fx = phi[:, :-1, :] - phi[:, 1:, :]
+        fy = phi[:, :, :-1] - phi[:, :, 1:]
+        if stream is not None:
+            k, n0, n1 = source.shape
+            full = torch.zeros((k, n0 + 1, n1 + 1), dtype=rho.dtype)
+            full[:, 1:n0, 1:n1] = stream
+            fx = fx + full[:, 1:n0, 1:] - full[:, 1:n0, :-1]
+            fy = fy - (full[:, 1:, 1:n1] - full[:, :-1, 1:n1])
+        return (fx, fy)
+
+    def face_terms(self, rho: Any, stream: Any = None) -> list[tuple[Any, Any, Any, Any]]:
+        """Per axis: (j, b, χ_f, ρ_f) on every face and step, shapes (K, faces...)."""
+        mid = 0.5 * (rho[1:] + rho[:-1])
+        phi = self.mean_field(mid)
+        out = []
+        for a, flux in enumerate(self.fluxes(rho, stream)):
+            h = self.grid.spacing[a]
+            lo, hi = faces(mid.ndim, 1 + a, self.shape[a])
+            rf = 0.5 * (mid[lo] + mid[hi])
+            chi = self.mobility.chi(rf)
+            b = (-0.5 * self.noise**2 * self.mobility.d(rf) * (mid[hi] - mid[lo])
+                 - chi * (phi[hi] - phi[lo])) / h
+            j = flux * h / self.vol
+            out.append((j, b, chi, rf))
+        return out
+
+    def value(self, rho: Any, stream: Any = None) -> Any:
+        """J of the density flow ``rho`` (K+1, *shape) (and stream function in 2D)."""
+        total = 0.0
+        for j, b, chi, _ in self.face_terms(rho, stream):
+            total = total + ((j - b) ** 2 / chi).sum()
+        return total * self.vol * self.dt / (2.0 * self.noise**2)
+
+    def kinetic(self, rho: Any, stream: Any = None) -> Any:
+        r""":math:`\frac{1}{2\sigma^2}\iint |j|^2/\chi` of the flow."""
+        total = 0.0
+        for j, _, chi, _ in self.face_terms(rho, stream):
+            total = total + (j**2 / chi).sum()
+        return total * self.vol * self.dt / (2.0 * self.noise**2)
+
+    def free_energy(self, rho: np.ndarray) -> np.ndarray:
+        r""":math:`F(\rho) = \frac{\sigma^2}{2}\int f(\rho) + \int U\rho + \frac12\iint W\rho\rho`
+        of each slice of densities ``rho`` (numpy, (K+1, *shape)); shape (K+1,)."""
+        axes = tuple(range(1, self.grid.dim + 1))
+        p = rho * self.vol
+        energy = (p * self.confinement_np).sum(axis=axes)
+        if self.interacting:
+            energy = energy + 0.5 * (p * self.pair_np(p)).sum(axis=axes)
+        fdens = np.asarray(self.mobility.f(rho), dtype=float)
+        return 0.5 * self.noise**2 * fdens.sum(axis=axes) * self.vol + energy
+
+
+def action(problem: BridgeProblem, density: np.ndarray, mobility: Mobility | None = None,
+           total_mass: float = 1.0) -> float:
+    """J of a flow of *normalised* densities ``density`` (K+1, *grid.shape) of ``problem``
+    (each slice integrating to 1; scaled by ``total_mass`` for the mobility), with the
+    continuity-exact fluxes of :class:`DirectAction` (in 2D: the curl-free part only).
+    Endpoint slices are used as given."""
+    import torch
+
+    act = DirectAction(problem, mobility, total_mass)
+    rho = torch.as_tensor(np.asarray(density, dtype=float) * act.mass)
+    expected = (problem.steps + 1, *problem.grid.shape)
+    if tuple(rho.shape) != expected:
+        raise InputError(f"density must have shape {expected}, got {tuple(rho.shape)}")
+    return float(act.value(rho))
+
+
+# --------------------------------------------------------------------------- warm start
+
+
+def _cell_cdf_quantiles(p: np.ndarray, edges: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """Quantile function of the piecewise-uniform law with cell masses p at levels u."""
+    cdf = np.concatenate([[0.0], np.cumsum(p)])
+    cdf /= cdf[-1]
+    keep = np.concatenate([[True], np.diff(cdf) > 0])
+    return np.interp(u, cdf[keep], edges[keep])
+
+
+def displacement_interpolation(problem: BridgeProblem) -> np.ndarray:
+    """McCann's displacement interpolation between the problem's endpoints as cell masses
+    (K+1, *shape), each slice summing to 1.
+
+    1D: quantile interpolation :math:`Q_t = (1-t)Q_\\mu + tQ_\\nu` of the piecewise-uniform
+    laws, read back as masses by differencing the CDF at the cell edges. 2D: the exact plan π of
+    ``ot.emd`` between the cell masses; each pair moves along the straight line and is
+    deposited by bilinear (cloud-in-cell) weights.
+    """
+    grid = problem.grid
+    mu, nu = problem.initial, problem.final
+    s = problem.times / problem.horizon
+    out = np.empty((len(s), *grid.shape))
+    if grid.dim == 1:
+        edges = grid.edges[0]
+        u = np.linspace(0.0, 1.0, 20 * grid.size + 1)
+        q0 = _cell_cdf_quantiles(mu, edges, u)
+        q1 = _cell_cdf_quantiles(nu, edges, u)
+        for k, t in enumerate(s):
+            qt = (1 - t) * q0 + t * q1
+            cdf = np.interp(edges, qt, u)
+            cdf[0], cdf[-1] = 0.0, 1.0
+            out[k] = np.clip(np.diff(cdf), 0.0, None)
+    else:
+        import ot
+
+        if grid.size > OT_MAX_CELLS:
+            raise InputError(f"the displacement warm start needs an exact plan of {grid.size}² "
+                             f"entries; use warm_start='linear' above {OT_MAX_CELLS} cells")
+        pts = grid.points.reshape(-1, grid.dim)
+        a, b = mu.ravel(), nu.ravel()
+        ia, ib = np.flatnonzero(a > 0), np.flatnonzero(b > 0)
+        cost = ot.dist(pts[ia], pts[ib])
+        plan = ot.emd(a[ia] / a[ia].sum(), b[ib] / b[ib].sum(), cost, numItermax=10**7)
+        ri, ci = np.nonzero(plan > 0)
+        weights = plan[ri, ci]
+        x0, x1 = pts[ia[ri]], pts[ib[ci]]
+        lower = np.asarray(grid.lower)
+        spacing = np.asarray(grid.spacing)
+        for k, t in enumerate(s):
+            pos = ((1 - t) * x0 + t * x1 - lower) / spacing - 0.5
+            base = np.floor(pos).astype(int)
+            frac = pos - base
+            slab = np.zeros(grid.shape)
+            for corner in np.ndindex(*(2,) * grid.dim):
+                c = np.asarray(corner)
+                idx = np.clip(base + c, 0, np.asarray(grid.shape) - 1)
+                w = weights * np.prod(np.where(c == 1, frac, 1 - frac), axis=1)
+                np.add.at(slab, tuple(idx.T), w)
+            out[k] = slab
+    out /= out.reshape(len(s), -1).sum(axis=1).reshape(-1, *([1] * grid.dim))
+    out[0], out[-1] = mu, nu
+    return out
+
+
+def _linear_interpolation(problem: BridgeProblem) -> np.ndarray:
+    s = (problem.times / problem.horizon).reshape(-1, *([1] * problem.grid.dim))
+    return (1 - s) * problem.initial + s * problem.final
+
+
+# --------------------------------------------------------------------------- L-BFGS
+
+
+@dataclass
+class _Minimised:
+    x: np.ndarray
+    value: float
+    grad_norm: float
+    iterations: int
+    status: str
+    message: str
+    history: list[dict[str, float]]
+
+
+def _lbfgs(fun: Callable[[np.ndarray], tuple[float, np.ndarray | None]], x0: np.ndarray,
+           options: DirectOptions, callback: Callable[[int, float, float], None] | None,
+           preconditioner: Callable[[np.ndarray], Callable[[np.ndarray], np.ndarray]] | None
+           = None) -> _Minimised:
+    """L-BFGS (two-loop recursion; Nocedal & Wright, Numerical Optimization, 2006, Alg. 7.4)
+    with Armijo backtracking; ``fun`` returns (inf, None) outside the feasible set.
+
+    ``preconditioner(x)``, when given, returns the map q ↦ H₀⁻¹q of an SPD approximation H₀ of
+    the Hessian at x, used instead of the scalar initial matrix."""
+    x = x0.copy()
+    f, g = fun(x)
+    if g is None or not math.isfinite(f):
+        raise InputError("the warm start of the direct solver is not feasible")
+    s_hist: list[np.ndarray] = []
+    y_hist: list[np.ndarray] = []
+    values = [f]
+    history: list[dict[str, float]] = []
+    start = time.perf_counter()
+    status, message = "not_converged", ""
+    it = 0
+    gnorm = float(np.abs(g).max()) if g.size else 0.0
+    if g.size == 0:
+        return _Minimised(x, f, 0.0, 0, "converged", "no free variables (one time step)", [])
+    apply = preconditioner(x) if preconditioner is not None else None
+    for it in range(1, options.max_iter + 1):
+        q = g.copy()
+        alphas = []
+        for s, y in zip(reversed(s_hist), reversed(y_hist), strict=True):
+            rho = 1.0 / (y @ s)
+            alpha = rho * (s @ q)
+            q -= alpha * y
+            alphas.append((rho, alpha))
+        if apply is not None:
+            q = apply(q)
+        elif s_hist:
+            q *= (s_hist[-1] @ y_hist[-1]) / (y_hist[-1] @ y_hist[-1])
+        else:
+            q *= min(1.0, 1.0 / max(gnorm, 1e-300))
+        for (s, y), (rho, alpha) in zip(zip(s_hist, y_hist, strict=True), reversed(alphas),
+                                        strict=True):
+            beta = rho * (y @ q)
+            q += (alpha - beta) * s
+        d = -q
+        slope = float(g @ d)
+        if slope >= 0:
+            s_hist.clear()
+            y_hist.clear()
+            d = -apply(g) if apply is not None else -g * min(1.0, 1.0 / max(gnorm, 1e-300))
+            slope = float(g @ d)
+        step = 1.0
+        for _ in range(60):
+            x_new = x + step * d
+            f_new, g_new = fun(x_new)
+            if g_new is not None and math.isfinite(f_new) and f_new <= f + 1e-4 * step * slope:
+                break
+            step *= 0.5
+        else:
+            status = "converged" if gnorm <= 100 * options.gtol else "stalled"
+            message = f"line search found no decrease after {it} iterations"
+            break
+        assert g_new is not None
+        s_vec, y_vec = x_new - x, g_new - g
+        if s_vec @ y_vec > 1e-12 * np.linalg.norm(s_vec) * np.linalg.norm(y_vec):
+            s_hist.append(s_vec)
+            y_hist.append(y_vec)
+            if len(s_hist) > options.memory:
+                s_hist.pop(0)
+                y_hist.pop(0)
+        x, f, g = x_new, f_new, g_new
+        gnorm = float(np.abs(g).max())
+        values.append(f)
+        history.append({"residual": gnorm, "marginal_error": 0.0, "cost": f,
+                        "seconds": time.perf_counter() - start})
+        if callback is not None:
+            callback(it, f, gnorm)
+        if gnorm <= options.gtol:
+            status, message = "converged", f"gradient {gnorm:.2e} ≤ gtol after {it} iterations"
+            break
+        if len(values) > options.window:
+            drop = values[-options.window - 1] - f
+            if drop <= options.tol * max(abs(f), 1e-300):
+                status = "converged"
+                message = (f"cost changed by {drop:.2e} over the last {options.window} "
+                           f"iterations (≤ tol × J) after {it} iterations")
+                break
+    else:
+        message = (f"not converged after {options.max_iter} iterations: gradient {gnorm:.2e}, "
+                   f"last change {values[-2] - values[-1] if len(values) > 1 else 0.0:.2e}")
+    return _Minimised(x, f, gnorm, it, status, message, history)
+
+
+# --------------------------------------------------------------------------- solver
+
+
+def solve_direct(problem: BridgeProblem, options: DirectOptions | None = None,
+                 callback: Callable[[int, float, float], None] | None = None) -> BridgeResult:
+    """Minimise the discretised action of ``problem`` with ``options.mobility``.
+
+    Returns a :class:`~mfbridge.result.BridgeResult` (method ``"direct"``, route the mobility's
+    name); ``status`` is ``"converged"`` or ``"not_converged"``/``"stalled"`` (then a
+    :class:`~mfbridge.errors.ConvergenceWarning` is issued). ``callback(iteration, cost,
+    gradient)`` is called after every L-BFGS iteration. Raises :class:`InputError` when an
+    endpoint leaves the mobility's domain at the chosen ``total_mass``.
+    """
+    options = options or DirectOptions()
+    if not isinstance(options, DirectOptions):
+        raise InputError(f"solve_direct needs DirectOptions, got {type(options).__name__}")
+    import torch
+
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        with threadpool_limits(limits=1):
+            return _solve(problem, options, callback)
+    finally:
+        torch.set_num_threads(threads)
+
+
+def _check_endpoints(problem: BridgeProblem, options: DirectOptions) -> None:
+    mob, mass, vol = options.mobility, options.total_mass, problem.grid.cell_volume
+    for name, p in (("initial", problem.initial), ("final", problem.final)):
+        rho = mass * p / vol
+        hint = ""
+        if rho.max() >= mob.upper:
+            hint = (f"; at total_mass = {mass:g} the peak density is {rho.max():.4g}: lower "
+                    f"DirectOptions.total_mass below {mass * mob.upper / rho.max():.4g}")
+        mob.check_density(rho, f"the {name} density (total_mass × normalised density)", hint)
+
+
+def _solve(problem: BridgeProblem, options: DirectOptions,
+           callback: Callable[[int, float, float], None] | None) -> BridgeResult:
+    import torch
+
+    start = time.perf_counter()
+    _check_endpoints(problem, options)
+    act = DirectAction(problem, options.mobility, options.total_mass)
+    grid, mob, mass = problem.grid, options.mobility, options.total_mass
+    vol = grid.cell_volume
+    k_steps = problem.steps
+    linear = _linear_interpolation(problem)
+    if options.warm_start == "displacement" and k_steps > 1:
+        guess = 0.999 * displacement_interpolation(problem) + 0.001 * linear
+        if not _inside(mob, mass * guess[1:-1] / vol):
+            guess = linear
+    else:
+        guess = linear
+    interior = guess[1:-1]
+    if k_steps > 1 and not _inside(mob, mass * interior / vol):
+        raise InputError("the linear interpolation of the endpoints leaves the mobility's domain")
+    unpack, x0 = _softmax_variables(act, guess)
+
+    def fun(x_np: np.ndarray) -> tuple[float, np.ndarray | None]:
+        x = torch.from_numpy(x_np).requires_grad_(True)
+        rho, stream = unpack(x)
+        if not _inside(mob, rho[1:-1].detach().numpy()):
+            return math.inf, None
+        value = act.value(rho, stream)
+        if not torch.isfinite(value):
+            return math.inf, None
+        (grad,) = torch.autograd.grad(value, x)
+        return float(value.detach()), grad.numpy().copy()
+
+    setup = time.perf_counter() - start
+    opt = _lbfgs(fun, x0, options, callback)
+    solve_seconds = time.perf_counter() - start - setup
+    with torch.no_grad():
+        rho_t, stream_t = unpack(torch.from_numpy(opt.x))
+        cost = float(act.value(rho_t, stream_t))
+        kinetic = float(act.kinetic(rho_t, stream_t))
+        terms = act.face_terms(rho_t, stream_t)
+        velocity = [((j - b) / rf).numpy() for j, b, _, rf in terms]
+    rho = rho_t.numpy()
+    p = rho * vol / mass
+    fe = act.free_energy(rho)
+    delta_f = float(fe[-1] - fe[0]) / problem.noise**2
+    mean, cov = observables.moments(p, grid)
+    masses = p.reshape(len(p), -1).sum(axis=1)
+    marginal_error = float(np.abs(masses - 1.0).max())
+    status, message = opt.status, opt.message
+    if status == "converged":
+        message = f"converged: {message}; J = {cost:.8g}"
+    else:
+        warnings.warn(ConvergenceWarning(f"direct solver {status}: {message}"), stacklevel=2)
+    nan = np.full(rho.shape, np.nan)
+    model = {
+        "confinement": _describe(problem.confinement),
+        "interaction": _describe(problem.interaction),
+        "mobility": mob.describe(),
+        "total_mass": mass,
+    }
+    return BridgeResult(
+        grid=grid,
+        times=problem.times,
+        density=p / vol,
+        control=_centre_control(velocity, grid, k_steps),
+        log_forward=nan,
+        log_backward=nan.copy(),
+        correction=nan.copy(),
+        mean=mean,
+        cov=cov,
+        free_energy=fe,
+        entropy=observables.entropy(rho * vol, grid),
+        cost=cost,
+        cost_kinetic=kinetic,
+        cost_drift=cost - kinetic - delta_f,
+        cost_free_energy=delta_f,
+        noise=problem.noise,
+        method="direct",
+        route=mob.name,
+        status=status,
+        message=message,
+        iterations=opt.iterations,
+        residual=opt.grad_norm,
+        marginal_error=marginal_error,
+        history=opt.history,
+        timings={"setup": setup, "solve": solve_seconds, "total": time.perf_counter() - start},
+        model=model,
+    )
+
+
+Unpack = Callable[[Any], tuple[Any, Any]]
+
+
+def _softmax_variables(act: DirectAction, guess: np.ndarray) -> tuple[Unpack, np.ndarray]:
+    """Free variables z (interior densities ρ_k = M softmax(z_k)/|c|) and, in 2D, the stream
+    function; returns the map x ↦ (ρ (K+1, *shape), stream) and the starting point."""
+    import torch
+
+    grid, k_steps, mass, vol = act.grid, act.problem.steps, act.mass, act.vol
+    z0 = np.log(np.maximum(guess[1:-1], 1e-300)).reshape(k_steps - 1, -1)
+    n_z = z0.size
+    stream_shape = (k_steps, grid.shape[0] - 1, grid.shape[1] - 1) if grid.dim == 2 else None
+    n_stream = int(np.prod(stream_shape)) if stream_shape is not None else 0
+    x0 = np.concatenate([z0.ravel(), np.zeros(n_stream)])
+
+    def unpack(x: Any) -> tuple[Any, Any]:
+        z = x[:n_z].reshape(k_steps - 1, -1)
+        rho_int = (mass / vol) * torch.softmax(z, dim=1).reshape(k_steps - 1, *grid.shape)
+        rho = torch.cat([act.rho0[None], rho_int, act.rho1[None]], dim=0)
+        stream = x[n_z:].reshape(stream_shape) if stream_shape is not None else None
+        return rho, stream
+
+    return unpack, x0
+
+
+def _inside(mob: Mobility, rho: np.ndarray) -> bool:
+    return bool(np.all(rho > mob.lower) and np.all(rho < mob.upper))
+
+
+def _centre_control(velocity: list[np.ndarray], grid: Grid, k_steps: int) -> np.ndarray:
+    """Face velocities per step → cell centres (mean of the two faces, walls 0) → time nodes
+    (mean of the adjacent steps); shape (K+1, *shape, d)."""
+    comps = []
+    for a, v in enumerate(velocity):
+        pad = [(0, 0)] * v.ndim
+        pad[1 + a] = (1, 1)
+        full = np.pad(v, pad)
+        lo, hi = faces(full.ndim, 1 + a, full.shape[1 + a])
+        cell = 0.5 * (full[lo] + full[hi])
+        nodes = np.empty((k_steps + 1, *grid.shape))
+        nodes[0], nodes[-1] = cell[0], cell[-1]
+        nodes[1:-1] = 0.5 * (cell[1:] + cell[:-1])
+        comps.append(nodes)
+    return np.stack(comps, axis=-1)
+
+
+def _describe(obj: object) -> dict[str, object]:
+    describe = getattr(obj, "describe", None)
+    return describe() if callable(describe) else {"repr": repr(obj)}
