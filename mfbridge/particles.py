@@ -71,7 +71,6 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-import scipy.fft
 from threadpoolctl import threadpool_limits
 
 from mfbridge.errors import InputError
@@ -212,17 +211,10 @@ class PairForce:
         self.is_zero = bool(getattr(interaction, "is_zero", False))
         self.linear = isinstance(interaction, HarmonicInteraction)
         if mode == "grid" and not self.is_zero:
-            offsets = [np.arange(-(n - 1), n) * h
-                       for n, h in zip(grid.shape, grid.spacing, strict=True)]
-            mesh = np.stack(np.meshgrid(*offsets, indexing="ij"), axis=-1)
-            table = np.asarray(interaction.grad(mesh), dtype=float)
-            if not np.all(np.isfinite(table)):
-                raise InputError("the interaction gradient is not finite on the grid offsets")
-            self._fft_shape = tuple(scipy.fft.next_fast_len(2 * n - 1, real=True)
-                                    for n in grid.shape)
-            self._axes = tuple(range(grid.dim))
-            self._table_hat = [scipy.fft.rfftn(table[..., c], s=self._fft_shape, axes=self._axes)
-                               for c in range(grid.dim)]
+            try:
+                self._field = PairField(grid, interaction, gradient=True)
+            except ValueError as exc:
+                raise InputError(str(exc)) from exc
 
     def __call__(self, x: np.ndarray, stencil: _Stencil | None = None) -> np.ndarray:
         if self.is_zero:
@@ -252,11 +244,7 @@ class PairForce:
         n = x.shape[0]
         masses = np.bincount(st.index.ravel(), weights=st.weight.ravel(),
                              minlength=self.grid.size).reshape(self.grid.shape) / n
-        hat = scipy.fft.rfftn(masses, s=self._fft_shape, axes=self._axes)
-        index = tuple(slice(k - 1, 2 * k - 1) for k in self.grid.shape)
-        comps = [scipy.fft.irfftn(hat * t, s=self._fft_shape, axes=self._axes)[index]
-                 for t in self._table_hat]
-        field_ = np.stack(comps, axis=-1).reshape(self.grid.size, self.grid.dim)
+        field_ = self._field(masses).reshape(self.grid.size, self.grid.dim)
         return _gather(st, field_)
 
 

@@ -117,31 +117,42 @@ def edge_rates(phi: np.ndarray, grid: Grid, noise: float) -> EdgeRates:
 
 
 class PairField:
-    """Discrete convolution with a pair potential, :math:`(W\\star p)_i = \\sum_j W(x_i - x_j)p_j`.
+    """Discrete convolution with a pair potential, :math:`(W\\star p)_i = \\sum_j W(x_i - x_j)p_j`,
+    or with its gradient, :math:`\\sum_j \\nabla W(x_i - x_j) p_j` (``gradient=True``).
 
-    ``p`` holds cell masses (shape (*batch, *grid.shape)); the result has the same shape and the
-    units of W. Computed by FFT with the table of W on all cell offsets, O(n log n) per field.
-    Because W is even, the same operator is its own adjoint.
+    ``p`` holds cell masses (shape (*batch, *grid.shape)); the result has the same shape (with a
+    trailing axis of length d for the gradient) and the units of W (of ∇W). Computed by FFT with
+    the table of W on all cell offsets, O(n log n) per field. Because W is even, the potential
+    operator is its own adjoint.
     """
 
-    def __init__(self, grid: Grid, interaction: Interaction) -> None:
+    def __init__(self, grid: Grid, interaction: Interaction, gradient: bool = False) -> None:
         self.grid = grid
+        self.gradient = gradient
         self.is_zero = bool(getattr(interaction, "is_zero", False))
         offsets = [np.arange(-(n - 1), n) * h
                    for n, h in zip(grid.shape, grid.spacing, strict=True)]
         mesh = np.stack(np.meshgrid(*offsets, indexing="ij"), axis=-1)
-        table = np.asarray(interaction.value(mesh), dtype=float)
+        table = np.asarray(interaction.grad(mesh) if gradient else interaction.value(mesh),
+                           dtype=float)
         if not np.all(np.isfinite(table)):
-            raise ValueError("the interaction potential is not finite on the grid offsets")
+            what = "gradient" if gradient else "potential"
+            raise ValueError(f"the interaction {what} is not finite on the grid offsets")
+        # components first, so each is one more batch axis of the transform
+        tables = np.moveaxis(table, -1, 0) if gradient else table
         # a period of 2n - 1 already keeps the n wanted outputs free of wrap-around
         self._fft_shape = tuple(scipy.fft.next_fast_len(2 * n - 1, real=True) for n in grid.shape)
         self._axes = tuple(range(-grid.dim, 0))
-        self._table_hat = scipy.fft.rfftn(table, s=self._fft_shape, axes=self._axes)
+        self._table_hat = scipy.fft.rfftn(tables, s=self._fft_shape, axes=self._axes)
 
     def __call__(self, p: np.ndarray) -> np.ndarray:
+        shape = (*p.shape, self.grid.dim) if self.gradient else p.shape
         if self.is_zero:
-            return np.zeros_like(p, dtype=float)
+            return np.zeros(shape)
         hat = scipy.fft.rfftn(p, s=self._fft_shape, axes=self._axes)
+        if self.gradient:
+            hat = np.expand_dims(hat, -self.grid.dim - 1)  # a component axis
         full = scipy.fft.irfftn(hat * self._table_hat, s=self._fft_shape, axes=self._axes)
         index = (Ellipsis, *(slice(n - 1, 2 * n - 1) for n in self.grid.shape))
-        return full[index]
+        out = full[index]
+        return np.moveaxis(out, -self.grid.dim - 1, -1) if self.gradient else out

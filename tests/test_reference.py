@@ -21,3 +21,16 @@ def test_pair_field_equals_direct_sum(interaction, grid):
     table = interaction.value(pts[:, None, :] - pts[None, :, :])
     direct = (p.reshape(3, -1) @ table.T).reshape(p.shape)
     assert np.allclose(PairField(grid, interaction)(p), direct, rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.parametrize("grid", [Grid(-3.0, 2.0, 41), Grid([-2.0, -1.0], [2.0, 3.0], [11, 14])])
+def test_pair_force_field_equals_direct_sum(grid):
+    # sum_j grad W(x_i - x_j) p_j by an explicit O(n^2) sum
+    interaction = GaussianCore(1.0, 0.4)
+    p = np.random.default_rng(1).random((2, *grid.shape))
+    pts = grid.points.reshape(-1, grid.dim)
+    table = interaction.grad(pts[:, None, :] - pts[None, :, :])  # (n, n, d)
+    direct = np.einsum("ija,bj->bia", table, p.reshape(2, -1)).reshape(*p.shape, grid.dim)
+    field = PairField(grid, interaction, gradient=True)(p)
+    assert field.shape == direct.shape
+    assert np.allclose(field, direct, rtol=1e-12, atol=1e-12)
