@@ -11,6 +11,7 @@ Hydra is imported only here, and only when a function needs it.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
@@ -54,6 +55,30 @@ def _build(cfg: Any, group: str) -> Any:
         raise InputError(f"config group {group!r}: {cause}") from exc
 
 
+def noise_from_config(noise: Any, diffusion: Any) -> Any:
+    """σ from the config's ``noise`` (σ, length/√time) or ``diffusion`` (D, length²/time):
+    σ = √(2D). Both may be given only if they agree (relative difference ≤ 1e-9)."""
+    if diffusion is None:
+        if noise is None:
+            raise InputError("give the noise as noise=σ (length/√time) or as diffusion=D "
+                             "(length²/time, σ = √(2D)); both are null")
+        return noise
+    numeric = isinstance(diffusion, (int, float)) and not isinstance(diffusion, bool)
+    if not numeric or not (math.isfinite(diffusion) and diffusion > 0):
+        raise InputError(f"diffusion D must be a positive finite number (length²/time), "
+                         f"got {diffusion!r}")
+    sigma = math.sqrt(2.0 * diffusion)
+    if noise is not None:
+        numeric = isinstance(noise, (int, float)) and not isinstance(noise, bool)
+        if not numeric or not math.isclose(noise, sigma, rel_tol=1e-9):
+            raise InputError(
+                f"noise σ = {noise!r} and diffusion D = {diffusion!r} (σ = √(2D) = {sigma:.6g}) "
+                "are both given and disagree: give only one, e.g. "
+                f"noise=null diffusion={diffusion!r}"
+            )
+    return sigma
+
+
 def build_problem(cfg: Any) -> BridgeProblem:
     """Instantiate the grid, potentials and endpoints of ``cfg`` into a :class:`BridgeProblem`."""
     for key in (*GROUPS, "noise", "horizon", "steps"):
@@ -62,11 +87,14 @@ def build_problem(cfg: Any) -> BridgeProblem:
     endpoints = _build(cfg, "endpoints")
     if set(endpoints) != {"initial", "final"}:
         raise InputError("the endpoints group must define exactly 'initial' and 'final'")
+    from mfbridge.samples import check_same_dimension
+
+    check_same_dimension(endpoints["initial"], endpoints["final"])
     return BridgeProblem(
         grid=_build(cfg, "grid"),
         initial=endpoints["initial"],
         final=endpoints["final"],
-        noise=cfg.noise,
+        noise=noise_from_config(cfg.noise, cfg.get("diffusion")),
         horizon=cfg.horizon,
         steps=cfg.steps,
         confinement=_build(cfg, "confinement"),

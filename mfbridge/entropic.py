@@ -124,7 +124,9 @@ def _scaling(log_target: np.ndarray, log_kernel_side: np.ndarray, where: str) ->
         raise UnderflowError(
             f"the reference kernel underflows at {int(bad.sum())} cells where the {where} "
             "distribution has mass: the endpoints are too far apart for this noise level and "
-            "horizon (try a larger noise, a longer horizon, or a larger box)"
+            "horizon to be represented in double precision. Try solver.propagation=log (exact in "
+            "the log domain; the default propagation=auto switches to it by itself), a longer "
+            "horizon, a larger noise, or a larger box"
         )
     with np.errstate(invalid="ignore"):
         out = log_target - log_kernel_side

@@ -20,6 +20,16 @@ from mfbridge.errors import InputError
 from mfbridge.grid import Grid
 
 FORMAT_VERSION = 1
+UNITS = ("positions in the user's length unit (that of the grid box and of any data files), "
+         "times in the user's time unit (that of the horizon); σ in length/√time, D in "
+         "length²/time, control in length/time, density in 1/length^d, cost J dimensionless "
+         "(per particle)")
+INTERPRETATION = (
+    "The bridge is the most likely evolution of the population between the two observed "
+    "distributions under the chosen model (confinement U, interaction W, noise σ); it is not "
+    "an observed trajectory. Change the model and the bridge and its cost change: compare "
+    "models by sweeping their parameters (mfbridge -m ..., then mfbridge collect)."
+)
 RESULT_FILE = "result.nc"
 SUMMARY_FILE = "summary.json"
 
@@ -105,8 +115,20 @@ class BridgeResult:
             "grid": {"lower": list(self.grid.lower), "upper": list(self.grid.upper),
                      "shape": list(self.grid.shape)},
             "model": self.model,
+            "noise_input": self._noise_input(),
+            "units": UNITS,
+            "interpretation": INTERPRETATION,
             "timings": self.timings,
         }
+
+    def _noise_input(self) -> str:
+        """Which of σ (``noise``) or D (``diffusion``, σ = √(2D)) the configuration gave."""
+        diffusion = (self.config or {}).get("diffusion")
+        if diffusion is not None:
+            return (f"diffusion coefficient D = {diffusion:g} length²/time given; "
+                    f"noise σ = √(2D) = {self.noise:.6g} length/√time")
+        return (f"noise σ = {self.noise:g} length/√time given "
+                f"(diffusion coefficient D = σ²/2 = {0.5 * self.noise**2:.6g} length²/time)")
 
     # ------------------------------------------------------------------ labelled arrays
     def _space_dims(self) -> list[str]:
