@@ -19,6 +19,10 @@ class ConvergenceWarning(UserWarning):
     """An iterative solver stopped before reaching its stated tolerance."""
 
 
+class PrecisionWarning(UserWarning):
+    """The fast route lost precision and the solver switched to a slower exact one."""
+
+
 def unknown_name(kind: str, name: str, valid: list[str] | tuple[str, ...]) -> InputError:
     """Error for an unknown option name, listing the valid ones."""
     return InputError(f"unknown {kind} {name!r}; valid names are: {', '.join(sorted(valid))}")

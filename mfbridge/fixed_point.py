@@ -46,7 +46,7 @@ from threadpoolctl import threadpool_limits
 
 from mfbridge import entropic, observables
 from mfbridge.anderson import AndersonMixer
-from mfbridge.errors import ConvergenceWarning, InputError, unknown_name
+from mfbridge.errors import ConvergenceWarning, InputError, PrecisionWarning, unknown_name
 from mfbridge.problem import BridgeProblem
 from mfbridge.propagator import StepOperator
 from mfbridge.reference import EdgeRates, PairField, bernoulli_derivative, edge_rates, faces
@@ -321,6 +321,10 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
         outcome = None
     if options.propagation == "auto" and (outcome is None or outcome.status == "stalled"):
         # the rational steps lost cells the endpoints need: redo exactly in the log domain
+        warnings.warn(PrecisionWarning(
+            "the endpoints need values below double precision of the reference kernel; "
+            "switching to exact log-domain propagation (slower; set solver.propagation=log to "
+            "start there)"), stacklevel=3)
         bridge = _Bridge(problem, log_domain=True)
         start = outcome.start() if outcome is not None else start
         outcome = _iterate(bridge, options, route, start, history, callback)
