@@ -1,8 +1,22 @@
 """Command line: ``mfbridge [overrides...]`` solves the configured bridge into a run folder.
 
 The Hydra app composes ``conf/`` with the overrides; :func:`run` does the work and is what tests
-call. The run folder gets ``result.nc`` and ``summary.json`` (see :mod:`mfbridge.result`),
-``config.yaml`` (the resolved config), Hydra's own ``.hydra/`` record, figures and a log.
+call. A run folder (``hydra.run.dir``, or one sub-folder of ``hydra.sweep.dir`` per job of a
+``mfbridge -m`` sweep) holds
+
+* ``result.nc``: the result as labelled arrays (see :mod:`mfbridge.result`);
+* ``summary.json``: cost and its parts, status, timings, model;
+* ``config.yaml``: the resolved configuration;
+* ``record.json``: the run record: overrides, group choices, versions, git state, input-file
+  hashes, times, status and the error of a failed run (see :mod:`mfbridge.records`);
+* ``complete.json``: the completion marker, written last, with the SHA-256 of the result,
+  summary and record (a folder without it was killed or failed);
+* figures (``density.png``, ``moments.png``, ``convergence.png``; unless ``figures=false``);
+* the log (``mfbridge.log``) and Hydra's own ``.hydra/`` record.
+
+Errors: a single run that fails exits with status 2 (an input or solver error) or with
+Hydra's traceback (anything else). In a multirun a failing job is logged and recorded as failed
+in its folder, and the sweep goes on with the other jobs (``mfbridge collect`` lists it).
 """
 
 from __future__ import annotations
@@ -142,11 +156,24 @@ def main() -> None:
 
     import hydra
     from hydra.core.hydra_config import HydraConfig
+    from hydra.types import RunMode
 
     @hydra.main(config_path=str(CONF_DIR), config_name="config", version_base="1.3")
     def app(cfg: Any) -> None:
+        hc = HydraConfig.get()
+        output_dir = hc.runtime.output_dir
+        if hc.mode == RunMode.MULTIRUN:
+            # One failing job must not abort the sweep: run() has already recorded it as
+            # failed in its folder (collect lists it); log it and let the launcher go on.
+            try:
+                run(cfg, output_dir)
+            except Exception as exc:  # any job error is reported, not raised
+                detail = "" if isinstance(exc, MFBridgeError) else f" ({type(exc).__name__})"
+                log.error("job failed%s in %s: %s", detail, output_dir, exc,
+                          exc_info=not isinstance(exc, MFBridgeError))
+            return
         try:
-            run(cfg, HydraConfig.get().runtime.output_dir)
+            run(cfg, output_dir)
         except MFBridgeError as exc:
             log.error("%s", exc)
             sys.exit(2)

@@ -143,18 +143,49 @@ def test_git_state_outside_a_checkout_and_without_git(tmp_path: Path,
     assert records.git_state() is None
 
 
-def test_failed_run_is_listed_not_dropped(tmp_path: Path) -> None:
+def test_failed_job_does_not_abort_the_sweep(tmp_path: Path,
+                                             capsys: pytest.CaptureFixture[str]) -> None:
+    # The failing job comes first and the launcher runs the jobs one after the other, so the
+    # valid job only runs at all if the failure does not end the sweep.
     sweep_dir = tmp_path / "sweep"
-    _sweep(sweep_dir, "noise=0.8,-1", "grid.shape=32", "steps=8", "figures=false",
-           "hydra.launcher.n_jobs=2")
+    done = _sweep(sweep_dir, "noise=-1,0.8", "grid.shape=32", "steps=8", "figures=false",
+                  "hydra.launcher.n_jobs=1")
+    assert done.returncode == 0, done.stdout  # a multirun exits 0 even with a failed job
+    assert "job failed in" in done.stdout
+    assert "noise must be a positive finite number, got -1" in done.stdout
+    assert "sweep finished: 1 of 2 runs complete (0 not converged)" in done.stdout
+    valid = sweep_dir / "figures=False,grid.shape=32,noise=0.8,steps=8"
+    failed = sweep_dir / "figures=False,grid.shape=32,noise=-1,steps=8"
+    assert records.is_complete(valid)
+    assert not records.is_complete(failed)
+    record = records.read_record(failed)
+    assert record.status == "failed"
+    assert record.error is not None and record.error.startswith("InputError: noise must be")
+    stored = mfbridge.load(valid)
+    assert stored.status == "converged"
+
+    capsys.readouterr()
     written = collect.collect(sweep_dir, figures=False)
+    printed = capsys.readouterr().out
+    assert f"{sweep_dir}: 2 runs, 1 complete, 1 converged; swept: noise" in printed
+    assert ("  failed: figures=False,grid.shape=32,noise=-1,steps=8: failed: InputError: "
+            "noise must be a positive finite number, got -1") in printed
     rows = {float(r["noise"]): r for r in _table(written["table"])}
+    assert set(rows) == {0.8, -1.0}  # the failed job has a row, it is not dropped
     assert rows[-1.0]["status"] == "failed"
     assert "noise must be a positive finite number" in rows[-1.0]["problem"]
     assert rows[-1.0]["cost"] == ""
-    # both jobs have a row, whatever became of the other (finished, killed, never started)
-    assert set(rows) == {0.8, -1.0}
-    assert rows[0.8]["status"] in ("converged", "incomplete", "missing")
+    assert rows[0.8]["status"] == "converged"
+    assert float(rows[0.8]["cost"]) == stored.cost
+
+
+def test_failed_single_run_exits_non_zero(tmp_path: Path) -> None:
+    command = [str(CONSOLE_SCRIPT), "noise=-1", *SMALL, f"hydra.run.dir={tmp_path / 'run'}"]
+    done = subprocess.run(command, cwd=tmp_path, env=_env(), text=True, timeout=600,
+                          stdout=subprocess.PIPE, stderr=subprocess.STDOUT, check=False)
+    assert done.returncode == 2, done.stdout
+    assert "noise must be a positive finite number, got -1" in done.stdout
+    assert records.read_record(tmp_path / "run").status == "failed"
 
 
 def test_collect_refuses_a_folder_without_runs(tmp_path: Path,
