@@ -185,7 +185,8 @@ class _Bridge:
         for k in range(self.k_steps):
             rk = EdgeRates(tuple(r[k] for r in rates.forward),
                            tuple(r[k] for r in rates.backward))
-            steps.append(StepOperator(rk, self.dt, self.shape))
+            # in 2D/3D alternate the order of the axis factors (Strang over pairs of steps)
+            steps.append(StepOperator(rk, self.dt, self.shape, reverse=bool(k % 2)))
         return entropic.FrozenReference(steps, -self.expand(self.omega) * v_bar, self.log_domain)
 
     def solved(self, sol: entropic.EntropicSolution, ref: entropic.FrozenReference,

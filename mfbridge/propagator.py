@@ -171,9 +171,16 @@ class StepOperator:
     ``apply(g)`` computes :math:`M g` (backward: expectations of a function at the end of the
     step), ``apply_transpose(p)`` computes :math:`M^\top p` (forward: law at the end of the step).
     Inputs have shape ``spatial_shape`` or ``(*spatial_shape, batch)``.
+
+    In two or more dimensions ``reverse=None`` gives Strang's symmetric step (2d − 1 axis
+    factors, local error O(τ³)); ``reverse=False``/``True`` gives the one-sided product of the d
+    axis factors in increasing/decreasing axis order (local error O(τ²)). Alternating the two
+    one-sided orders from step to step composes, over every pair of steps, Strang's step of
+    length 2τ, so the scheme stays second order globally at d instead of 2d − 1 factors per step.
     """
 
-    def __init__(self, rates: EdgeRates, tau: float, spatial_shape: tuple[int, ...]) -> None:
+    def __init__(self, rates: EdgeRates, tau: float, spatial_shape: tuple[int, ...],
+                 reverse: bool | None = None) -> None:
         self.shape = tuple(spatial_shape)
         dim = len(self.shape)
         steps: list[AxisStep] = []
@@ -185,15 +192,23 @@ class StepOperator:
 
         if dim == 1:
             steps = [axis_step(0, tau)]
-        else:
+        elif reverse is None:
             half = [axis_step(a, tau / 2) for a in range(dim - 1)]
             steps = [*half, axis_step(dim - 1, tau), *reversed(half)]
+        else:
+            steps = [axis_step(a, tau) for a in range(dim)]
+            if reverse:
+                steps.reverse()
+        # factors are applied in list order; the transpose applies their transposes reversed
         self._steps = steps
+
+    def _ordered(self, transpose: bool) -> list[AxisStep]:
+        return self._steps[::-1] if transpose else self._steps
 
     def _run(self, values: np.ndarray, transpose: bool) -> np.ndarray:
         flat = values.ndim == len(self.shape)
         out = values[..., None] if flat else values
-        for step in self._steps:
+        for step in self._ordered(transpose):
             out = step.apply(out, transpose)
         return out[..., 0] if flat else out
 
@@ -207,6 +222,6 @@ class StepOperator:
         """``log(M exp(v))`` (``M^T`` if ``transpose``) without leaving the log domain, exact
         cell by cell (see :meth:`AxisStep.log_apply`); input and output: the spatial shape."""
         out = log_values
-        for step in self._steps:
+        for step in self._ordered(transpose):
             out = step.log_apply(out, transpose)
         return out
