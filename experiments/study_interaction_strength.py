@@ -19,20 +19,15 @@ from __future__ import annotations
 
 import csv
 import itertools
-import os
 import shutil
-import subprocess
-import sys
 import time
 from pathlib import Path
 from typing import Any
 
-ROOT = Path(__file__).resolve().parent.parent
+from study_common import FIGURE_DIR, REPORT_DIR, dirname_override, mfbridge, sweep_dir, tail
+
 NAME = "interaction_strength"
-SWEEP_REL = f"experiments/runs/study_{NAME}"
-SWEEP_DIR = ROOT / SWEEP_REL
-REPORT_DIR = ROOT / "experiments" / "reports"
-FIGURE_DIR = REPORT_DIR / "figures"
+SWEEP_REL, SWEEP_DIR = sweep_dir(NAME)
 STRENGTHS = "-2,-1,-0.5,0,0.5,1,2"
 SCENARIO = [
     "confinement=none", "interaction=gaussian", "interaction.range=1.0",
@@ -41,25 +36,7 @@ SCENARIO = [
     "noise=0.8", "grid.shape=256", "steps=50", "figures=false",
 ]
 # Keep the job folder names short (only the swept key): the fixed overrides are in record.json.
-FIXED_KEYS = [item.partition("=")[0] for item in SCENARIO]
-DIRNAME = f"hydra.job.config.override_dirname.exclude_keys=[{','.join(FIXED_KEYS)}]"
-
-
-def mfbridge(*args: str) -> str:
-    """Run the mfbridge console script from the repository root; return its output (stdout and
-    stderr together); stop with the output when it fails."""
-    script = Path(sys.executable).with_name("mfbridge")
-    env = {**os.environ, "OPENBLAS_NUM_THREADS": "1"}
-    done = subprocess.run([str(script), *args], cwd=ROOT, env=env, text=True,
-                          stdout=subprocess.PIPE, stderr=subprocess.STDOUT, check=False)
-    if done.returncode != 0:
-        raise SystemExit(f"mfbridge {' '.join(args)} failed:\n{done.stdout}")
-    return done.stdout
-
-
-def _tail(text: str, n: int) -> str:
-    lines = [line for line in text.strip().splitlines() if "outer iteration" not in line]
-    return "\n".join(lines[-n:])
+DIRNAME = dirname_override(SCENARIO)
 
 
 def _f(row: dict[str, str], key: str) -> float:
@@ -200,7 +177,7 @@ Densities ρ(t, x), one panel per strength (white: the mean):
 ## Output of the commands (last lines)
 
 ```text
-{_tail(sweep, 4)}
+{tail(sweep, 4)}
 {collected.strip()}
 ```
 """

@@ -20,21 +20,15 @@ on 2 cores).
 from __future__ import annotations
 
 import csv
-import os
-import subprocess
-import sys
 import time
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from study_common import FIGURE_DIR, REPORT_DIR, dirname_override, mfbridge, sweep_dir, tail
 
-ROOT = Path(__file__).resolve().parent.parent
 NAME = "optimal_vs_frozen"
-SWEEP_REL = f"experiments/runs/study_{NAME}"
-SWEEP_DIR = ROOT / SWEEP_REL
-REPORT_DIR = ROOT / "experiments" / "reports"
-FIGURE_DIR = REPORT_DIR / "figures"
+SWEEP_REL, SWEEP_DIR = sweep_dir(NAME)
 STRENGTHS = (0.0, 0.5, 1.0, 2.0, 4.0)
 SOLVERS = ("optimal", "frozen")
 STIFFNESS, NOISE, HORIZON = 0.5, 1.0, 1.0
@@ -46,20 +40,7 @@ SCENARIO = [
     f"horizon={HORIZON}", "grid.shape=512", "steps=100", "figures=false",
 ]
 # Keep the job folder names short (only the swept keys): the fixed overrides are in record.json.
-FIXED_KEYS = [item.partition("=")[0] for item in SCENARIO]
-DIRNAME = f"hydra.job.config.override_dirname.exclude_keys=[{','.join(FIXED_KEYS)}]"
-
-
-def mfbridge(*args: str) -> str:
-    """Run the mfbridge console script from the repository root; return its output (stdout and
-    stderr together); stop with the output when it fails."""
-    script = Path(sys.executable).with_name("mfbridge")
-    env = {**os.environ, "OPENBLAS_NUM_THREADS": "1"}
-    done = subprocess.run([str(script), *args], cwd=ROOT, env=env, text=True,
-                          stdout=subprocess.PIPE, stderr=subprocess.STDOUT, check=False)
-    if done.returncode != 0:
-        raise SystemExit(f"mfbridge {' '.join(args)} failed:\n{done.stdout}")
-    return done.stdout
+DIRNAME = dirname_override(SCENARIO)
 
 
 @dataclass(frozen=True)
@@ -218,11 +199,6 @@ def shrink(source: Path, target: Path, scale: float = 0.6) -> Path:
         small = image.convert("RGB").resize(size, Image.Resampling.LANCZOS)
         small.quantize(colors=128).save(target, optimize=True)
     return target
-
-
-def _tail(text: str, n: int) -> str:
-    lines = [line for line in text.strip().splitlines() if "outer iteration" not in line]
-    return "\n".join(lines[-n:])
 
 
 def main() -> None:
@@ -449,7 +425,7 @@ Densities ρ(t, x) from `mfbridge collect` (rows: κ; left column: frozen, right
 ## Output of the commands (last lines)
 
 ```text
-{_tail(sweep, 4)}
+{tail(sweep, 4)}
 {collected.strip()}
 ```
 """
