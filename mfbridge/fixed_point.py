@@ -308,10 +308,11 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
     if warm_start is None:
         start = _cold_start(bridge)
     else:
+        # a result without Schrödinger potentials (the direct solver's) has NaN there
         start = _Start(warm_start.masses,
-                       warm_start.correction if options.method == "optimal"
+                       np.nan_to_num(warm_start.correction) if options.method == "optimal"
                        else np.zeros_like(warm_start.correction),
-                       np.nan_to_num(warm_start.log_backward[-1], neginf=-745.0))
+                       np.nan_to_num(warm_start.log_backward[-1], nan=0.0, neginf=-745.0))
     history: list[dict[str, float]] = []
     note = ""
     try:
