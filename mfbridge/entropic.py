@@ -69,7 +69,7 @@ class EntropicSolution:
     log_b: np.ndarray
     marginal_error: float  # L1 distance of the end marginals to mu and nu (the larger)
     iterations: int
-    coupling: np.ndarray | None = None  # (n, n) static coupling, dense route only
+    coupling: np.ndarray | None = None  # (n, n) static coupling (dense route, or on request)
 
     def log_marginals(self, log_weights: np.ndarray) -> np.ndarray:
         return self.log_forward + log_weights + self.log_backward
