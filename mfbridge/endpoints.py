@@ -124,24 +124,35 @@ class Endpoint(ABC):
         inaccurate).
         """
         _check_dim(self, grid, name)
-        limit = _check_max_outside(max_outside)
+        return self._point_masses(grid, name, _check_max_outside(max_outside), min_width_cells)
+
+    def _point_masses(self, grid: Grid, name: str, limit: float,
+                      min_width_cells: float) -> np.ndarray:
+        """The point rule with its two guards (width in cells, mass outside the box); the error
+        texts come from :meth:`_too_narrow` and :meth:`_outside` so subclasses can say more."""
         width = self._narrowest_width(grid)
         if width < min_width_cells:
-            raise InputError(
-                f"the {name} distribution is too narrow for the grid: its smallest standard "
-                f"deviation is {width:.3g} grid cells (spacing {list(grid.spacing)}), below "
-                f"{min_width_cells:g}; refine the grid, widen the distribution, or pass your own "
-                "cell masses through check_masses"
-            )
+            raise InputError(self._too_narrow(name, width, grid, min_width_cells))
         m = self.density(grid.points) * grid.cell_volume
         outside = 1.0 - float(m.sum())
         if outside > limit:
-            raise InputError(
-                f"{100 * outside:.3g}% of the {name} distribution lies outside the box "
-                f"{_box_text(grid.lower, grid.upper)} (at most {100 * limit:.3g}% allowed): "
-                "enlarge the grid or move the endpoint"
-            )
+            raise InputError(self._outside(name, outside, grid, limit))
         return m / m.sum()
+
+    def _too_narrow(self, name: str, width: float, grid: Grid, min_width_cells: float) -> str:
+        return (
+            f"the {name} distribution is too narrow for the grid: its smallest standard "
+            f"deviation is {width:.3g} grid cells (spacing {list(grid.spacing)}), below "
+            f"{min_width_cells:g}; refine the grid, widen the distribution, or pass your own "
+            "cell masses through check_masses"
+        )
+
+    def _outside(self, name: str, outside: float, grid: Grid, limit: float) -> str:
+        return (
+            f"{100 * outside:.3g}% of the {name} distribution lies outside the box "
+            f"{_box_text(grid.lower, grid.upper)} (at most {100 * limit:.3g}% allowed): "
+            "enlarge the grid or move the endpoint"
+        )
 
     def __repr__(self) -> str:
         params = {k: v for k, v in self.describe().items() if k != "name"}

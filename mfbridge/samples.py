@@ -699,25 +699,23 @@ class Samples(Endpoint):
         self._check_inside(grid, name)
         if self.method == "histogram":
             return self._histogram(grid)
-        width = self._narrowest_width(grid)
-        if width < min_width_cells:
-            raise InputError(
-                f"the bandwidth of the {name} samples ({self.source}) is too small for the "
-                f"grid: the kernel's smallest standard deviation is {width:.3g} grid cells "
-                f"(spacing {[round(h, 6) for h in grid.spacing]}), below {min_width_cells:g}; "
-                "use a larger bandwidth, a finer grid (grid.shape), or method=histogram"
-            )
-        m = self.density(grid.points) * grid.cell_volume
-        outside = 1.0 - float(m.sum())
-        limit = float(max_outside)
-        if outside > limit:
-            raise InputError(
-                f"{100 * outside:.3g}% of the kernel density of the {name} samples "
-                f"({self.source}) lies outside the box {_box(grid.lower, grid.upper)} (at most "
-                f"{100 * limit:.3g}% allowed): kernels of samples near the walls spill over; "
-                "use grid=span, enlarge the box, or give a smaller bandwidth"
-            )
-        return m / m.sum()
+        return self._point_masses(grid, name, float(max_outside), min_width_cells)
+
+    def _too_narrow(self, name: str, width: float, grid: Grid, min_width_cells: float) -> str:
+        return (
+            f"the bandwidth of the {name} samples ({self.source}) is too small for the "
+            f"grid: the kernel's smallest standard deviation is {width:.3g} grid cells "
+            f"(spacing {[round(h, 6) for h in grid.spacing]}), below {min_width_cells:g}; "
+            "use a larger bandwidth, a finer grid (grid.shape), or method=histogram"
+        )
+
+    def _outside(self, name: str, outside: float, grid: Grid, limit: float) -> str:
+        return (
+            f"{100 * outside:.3g}% of the kernel density of the {name} samples "
+            f"({self.source}) lies outside the box {_box(grid.lower, grid.upper)} (at most "
+            f"{100 * limit:.3g}% allowed): kernels of samples near the walls spill over; "
+            "use grid=span, enlarge the box, or give a smaller bandwidth"
+        )
 
     def _histogram(self, grid: Grid) -> np.ndarray:
         data = self.data
