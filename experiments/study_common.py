@@ -41,3 +41,12 @@ def tail(text: str, n: int) -> str:
     """The last n lines of a log, without the per-iteration progress lines."""
     lines = [line for line in text.strip().splitlines() if "outer iteration" not in line]
     return "\n".join(lines[-n:])
+
+
+def timing_sentence(seconds: float, solver_total: float) -> str:
+    """The report's sentence on how long the sweep and collect took."""
+    return (
+        f"The two commands took {seconds:.0f} s wall time on 2 shared cores in the script's last\n"
+        "invocation (a re-run skips complete runs, so only a first run measures the sweep); "
+        f"solver time\nsummed over the runs: {solver_total:.0f} s."
+    )

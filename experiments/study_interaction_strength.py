@@ -24,7 +24,15 @@ import time
 from pathlib import Path
 from typing import Any
 
-from study_common import FIGURE_DIR, REPORT_DIR, dirname_override, mfbridge, sweep_dir, tail
+from study_common import (
+    FIGURE_DIR,
+    REPORT_DIR,
+    dirname_override,
+    mfbridge,
+    sweep_dir,
+    tail,
+    timing_sentence,
+)
 
 NAME = "interaction_strength"
 SWEEP_REL, SWEEP_DIR = sweep_dir(NAME)
@@ -37,6 +45,14 @@ SCENARIO = [
 ]
 # Keep the job folder names short (only the swept key): the fixed overrides are in record.json.
 DIRNAME = dirname_override(SCENARIO)
+
+
+def _trend(values: list[float], rising: str, falling: str, neither: str) -> str:
+    if all(b > a for a, b in itertools.pairwise(values)):
+        return rising
+    if all(b < a for a, b in itertools.pairwise(values)):
+        return falling
+    return neither
 
 
 def _f(row: dict[str, str], key: str) -> float:
@@ -91,21 +107,13 @@ def main() -> None:
             f"{_f(worst, 'interaction.strength'):g} (J = {_f(worst, 'cost'):.5f})"
             + (f"; without interaction J = {_f(zero[0], 'cost'):.5f}." if zero else "."))
         costs = [_f(r, "cost") for r in ok]
-        if all(b > a for a, b in itertools.pairwise(costs)):
-            cost_trend = "rises monotonically"
-        elif all(b < a for a, b in itertools.pairwise(costs)):
-            cost_trend = "falls monotonically"
-        else:
-            cost_trend = "is not monotonic"
+        cost_trend = _trend(costs, "rises monotonically", "falls monotonically",
+                            "is not monotonic")
         findings.append(f"* Over the swept strengths the cost {cost_trend} from attraction to "
                         "repulsion.")
         spreads = [_f(r, "std_mid") for r in ok]
-        if all(b > a for a, b in itertools.pairwise(spreads)):
-            trend = "increases monotonically"
-        elif all(b < a for a, b in itertools.pairwise(spreads)):
-            trend = "decreases monotonically"
-        else:
-            trend = "does not change monotonically"
+        trend = _trend(spreads, "increases monotonically", "decreases monotonically",
+                       "does not change monotonically")
         findings.append(f"* The spread (standard deviation) of the population at T/2 {trend} "
                         f"with the strength, from {spreads[0]:.4f} (s = "
                         f"{_f(ok[0], 'interaction.strength'):g}) to {spreads[-1]:.4f} (s = "
@@ -141,9 +149,7 @@ mfbridge -m interaction.strength={STRENGTHS} {' '.join(SCENARIO)} \\
 mfbridge collect {SWEEP_REL}
 ```
 
-The two commands took {seconds:.0f} s wall time on 2 shared cores in the script's last
-invocation (a re-run skips complete runs, so only a first run measures the sweep); solver time
-summed over the runs: {solver_total:.0f} s.
+{timing_sentence(seconds, solver_total)}
 
 ## Numbers
 

@@ -25,7 +25,15 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from study_common import FIGURE_DIR, REPORT_DIR, dirname_override, mfbridge, sweep_dir, tail
+from study_common import (
+    FIGURE_DIR,
+    REPORT_DIR,
+    dirname_override,
+    mfbridge,
+    sweep_dir,
+    tail,
+    timing_sentence,
+)
 
 NAME = "optimal_vs_frozen"
 SWEEP_REL, SWEEP_DIR = sweep_dir(NAME)
@@ -364,9 +372,7 @@ mfbridge -m interaction.strength={strengths} solver={','.join(SOLVERS)} {' '.joi
 mfbridge collect {SWEEP_REL}
 ```
 
-The two commands took {seconds:.0f} s wall time on 2 shared cores in the script's last
-invocation (a re-run skips complete runs, so only a first run measures the sweep); solver time
-summed over the runs: {solver_total:.0f} s.
+{timing_sentence(seconds, solver_total)}
 
 ## Costs and gaps, grid against exact
 
