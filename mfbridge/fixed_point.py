@@ -276,7 +276,6 @@ class _Outcome:
     solved: _Solved
     ref: entropic.FrozenReference
     v_bar: np.ndarray
-    iterations: int
     residual: float
 
     def start(self) -> _Start:
@@ -349,7 +348,8 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
         plan = np.exp(sol.log_a.reshape(-1, 1) + entropic.log_kernel(ref)
                       + sol.log_b.reshape(1, -1))
         solved.sol = dataclasses.replace(sol, coupling=plan)
-    it, residual, status = outcome.iterations, outcome.residual, outcome.status
+    # iterations over every attempt (fallback to the log domain, continuation stages)
+    it, residual, status = len(history), outcome.residual, outcome.status
     if status == "converged":
         message = (f"converged in {it} outer iterations{note}: residual {residual:.2e}, "
                    f"marginal error {solved.sol.marginal_error:.2e}")
@@ -360,7 +360,7 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
         warnings.warn(ConvergenceWarning(message), stacklevel=3)
     solve_seconds = float(sum(h["seconds"] for h in history))
     return _result(bridge, solved, ref, outcome.v_bar, options, route, status, message,
-                   len(history), residual, history,
+                   it, residual, history,
                    {"solve": solve_seconds, "total": time.perf_counter() - start_time})
 
 
@@ -378,8 +378,7 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
     mixer = AndersonMixer(options.anderson, options.damping)
     inner_tol = options.sinkhorn_tol if not interacting else max(options.sinkhorn_tol, 1e-4)
     status, residual, solved, ref = "not_converged", np.inf, None, None
-    it = 0
-    for it in range(1, options.max_iter + 1):  # noqa: B007 - reported after the loop
+    for _ in range(options.max_iter):
         t0 = time.perf_counter()
         ref = bridge.reference(p_bar, v_bar)
         sol = inner(ref, mu, nu, log_b, tol=inner_tol, max_iter=options.sinkhorn_max_iter)
@@ -423,7 +422,7 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
         if optimal:
             v_bar = x_next[p_bar.size :].reshape(v_bar.shape)
     assert solved is not None and ref is not None
-    return _Outcome(status, solved, ref, v_bar, it, residual)
+    return _Outcome(status, solved, ref, v_bar, residual)
 
 
 def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: np.ndarray,
