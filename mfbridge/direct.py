@@ -41,9 +41,17 @@ solver an independent cross-check of it.
 Second order in h and Δt; for concave χ and constant D (and U = W = 0) it is jointly convex in
 (ρ, F), because :math:`(\text{linear})^2/\chi(\text{linear})` is.
 
-**Free variables**: the interior densities as :math:`\rho_k = M\,\mathrm{softmax}(z_k)/|c|`
-(positive, mass exactly M) and, in 2D, ψ. Gradients by ``torch.autograd`` (float64);
-minimisation by L-BFGS with a backtracking line search that rejects any step leaving the
+**Minimisation**, gradients and Hessian–vector products by ``torch.autograd`` (float64):
+
+* ``method="newton"`` (1D): the interior densities themselves (each slice's mean removed, so the
+  mass is exactly M) are the variables; a truncated Newton method (:mod:`mfbridge.newton`) with a
+  sparse Gauss–Newton preconditioner built in cumulative-mass variables
+  (:func:`_preconditioner_1d`) minimises J - μ|c|Σ log(ρ - lower) (+ log(upper - ρ)) for a
+  decreasing sequence of barrier weights μ (:func:`_interior_newton`), steps kept inside the
+  mobility's domain by the fraction-to-the-boundary rule;
+* ``method="lbfgs"`` (and always in 2D): the interior densities as
+  :math:`\rho_k = M\,\mathrm{softmax}(z_k)/|c|` (positive, mass exactly M) and, in 2D, ψ;
+  L-BFGS with a backtracking line search that rejects any step leaving the
 mobility's domain (e.g. ρ ≥ 1 for exclusion). Warm start: McCann's displacement interpolation
 (1D quantile interpolation; 2D from the exact plan of ``ot.emd``), blended with 1e-3 of the linear
 interpolation to keep every cell positive; the linear interpolation is used when the
@@ -76,13 +84,17 @@ from mfbridge import observables
 from mfbridge.errors import ConvergenceWarning, InputError, unknown_name
 from mfbridge.grid import Grid
 from mfbridge.mobility import Mobility, Walkers
+from mfbridge.newton import NewtonResult, Operator, SecondOrder, minimise
 from mfbridge.problem import BridgeProblem
 from mfbridge.reference import PairField, faces
 from mfbridge.result import BridgeResult
 
 WARM_STARTS = ("displacement", "linear")
+METHODS = ("newton", "lbfgs")
 MAX_DIM = 2
 OT_MAX_CELLS = 4096
+MU0, MU_FACTOR = 1e-2, 0.1
+CHI_FLOOR = 1e-60
 
 
 @dataclass(frozen=True)
@@ -92,9 +104,13 @@ class DirectOptions:
     * ``mobility``: a :class:`~mfbridge.mobility.Mobility` (default independent walkers);
     * ``total_mass``: M, the mass of the density profiles the mobility sees (see the module
       docstring; e.g. the mean occupation times the box volume for exclusion);
-    * ``max_iter``: L-BFGS iterations; ``memory``: L-BFGS history depth;
-    * ``tol``: stop when the cost decreased by less than ``tol`` × J over the last ``window``
-      iterations; ``gtol``: or when the largest gradient entry is below it;
+    * ``method``: ``"newton"`` (truncated Newton with a barrier; 1D) or ``"lbfgs"`` (always
+      used in 2D); ``max_iter``: Newton or L-BFGS iterations; ``max_cg``: CG iterations per
+      Newton step; ``memory``: L-BFGS history depth;
+    * ``tol``: Newton stops when the predicted decrease of a Newton step is below ``tol`` × J
+      (the barrier's bias is then also below ``tol`` × J); L-BFGS when the cost decreased by
+      less than ``tol`` × J over the last ``window`` iterations; ``gtol``: or when the largest
+      gradient entry is below it;
     * ``warm_start``: ``"displacement"`` (McCann interpolation) or ``"linear"``.
     """
 
@@ -106,6 +122,8 @@ class DirectOptions:
     memory: int = 20
     window: int = 20
     warm_start: str = "displacement"
+    method: str = "newton"
+    max_cg: int = 500
 
     def __post_init__(self) -> None:
         if not isinstance(self.mobility, Mobility):
@@ -113,10 +131,13 @@ class DirectOptions:
                              f"Mobility, got {self.mobility!r}")
         if self.warm_start not in WARM_STARTS:
             raise unknown_name("warm_start", self.warm_start, WARM_STARTS)
+        if self.method not in METHODS:
+            raise unknown_name("method", self.method, METHODS)
         checks = [
             ("total_mass", _is_number(self.total_mass) and math.isfinite(self.total_mass)
              and self.total_mass > 0),
             ("max_iter", _is_int(self.max_iter) and self.max_iter >= 1),
+            ("max_cg", _is_int(self.max_cg) and self.max_cg >= 1),
             ("memory", _is_int(self.memory) and self.memory >= 1),
             ("window", _is_int(self.window) and self.window >= 1),
             ("tol", _is_number(self.tol) and self.tol >= 0),
@@ -237,12 +258,19 @@ class DirectAction:
             fy = fy - (full[:, 1:, 1:n1] - full[:, :-1, 1:n1])
         return (fx, fy)
 
-    def face_terms(self, rho: Any, stream: Any = None) -> list[tuple[Any, Any, Any, Any]]:
-        """Per axis: (j, b, χ_f, ρ_f) on every face and step, shapes (K, faces...)."""
+    def face_terms(self, rho: Any, stream: Any = None, fluxes: tuple[Any, ...] | None = None,
+                   phi: Any = None) -> list[tuple[Any, Any, Any, Any]]:
+        """Per axis: (j, b, χ_f, ρ_f) on every face and step, shapes (K, faces...).
+
+        ``fluxes`` (one array per axis) replaces :meth:`fluxes`, and ``phi`` (K, *shape) the
+        mean field Φ̄ of the step midpoints (the preconditioner freezes it)."""
         mid = 0.5 * (rho[1:] + rho[:-1])
-        phi = self.mean_field(mid)
+        if phi is None:
+            phi = self.mean_field(mid)
+        if fluxes is None:
+            fluxes = self.fluxes(rho, stream)
         out = []
-        for a, flux in enumerate(self.fluxes(rho, stream)):
+        for a, flux in enumerate(fluxes):
             h = self.grid.spacing[a]
             lo, hi = faces(mid.ndim, 1 + a, self.shape[a])
             rf = 0.5 * (mid[lo] + mid[hi])
@@ -529,21 +557,18 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
     interior = guess[1:-1]
     if k_steps > 1 and not _inside(mob, mass * interior / vol):
         raise InputError("the linear interpolation of the endpoints leaves the mobility's domain")
-    unpack, x0 = _softmax_variables(act, guess)
-
-    def fun(x_np: np.ndarray) -> tuple[float, np.ndarray | None]:
-        x = torch.from_numpy(x_np).requires_grad_(True)
-        rho, stream = unpack(x)
-        if not _inside(mob, rho[1:-1].detach().numpy()):
-            return math.inf, None
-        value = act.value(rho, stream)
-        if not torch.isfinite(value):
-            return math.inf, None
-        (grad,) = torch.autograd.grad(value, x)
-        return float(value.detach()), grad.numpy().copy()
-
+    # Newton's preconditioner exists for 1D only (see _preconditioner_1d); 2D uses L-BFGS
+    use_lbfgs = options.method == "lbfgs" or grid.dim == 2
+    if use_lbfgs:
+        unpack, x0 = _softmax_variables(act, guess)
+    else:
+        unpack, x0 = _density_variables(act, guess)
+    objective = _Objective(act, unpack, mob)
     setup = time.perf_counter() - start
-    opt = _lbfgs(fun, x0, options, callback)
+    if use_lbfgs:
+        opt = _lbfgs(objective.value_grad, x0, options, callback)
+    else:
+        opt = _interior_newton(objective, x0, options, callback)
     solve_seconds = time.perf_counter() - start - setup
     with torch.no_grad():
         rho_t, stream_t = unpack(torch.from_numpy(opt.x))
@@ -625,6 +650,47 @@ def _softmax_variables(act: DirectAction, guess: np.ndarray) -> tuple[Unpack, np
     return unpack, x0
 
 
+def _density_variables(act: DirectAction, guess: np.ndarray) -> tuple[Unpack, np.ndarray]:
+    """Free variables y (interior densities ρ_k = Πy_k + M/(n|c|), Π removing each slice's
+    mean, so the mass is exactly M and ρ is linear in y) and, in 2D, the stream function."""
+    import torch
+
+    grid, k_steps, mass, vol = act.grid, act.problem.steps, act.mass, act.vol
+    y0 = (mass * guess[1:-1] / vol).reshape(k_steps - 1, -1)
+    n_y = y0.size
+    level = mass / (vol * grid.size)
+    stream_shape = (k_steps, grid.shape[0] - 1, grid.shape[1] - 1) if grid.dim == 2 else None
+    n_stream = int(np.prod(stream_shape)) if stream_shape is not None else 0
+    x0 = np.concatenate([y0.ravel(), np.zeros(n_stream)])
+
+    def unpack(x: Any) -> tuple[Any, Any]:
+        y = x[:n_y].reshape(k_steps - 1, -1)
+        rho_int = (y - y.mean(dim=1, keepdim=True) + level).reshape(k_steps - 1, *grid.shape)
+        rho = torch.cat([act.rho0[None], rho_int, act.rho1[None]], dim=0)
+        stream = x[n_y:].reshape(stream_shape) if stream_shape is not None else None
+        return rho, stream
+
+    return unpack, x0
+
+
+def _max_step(act: DirectAction, mob: Mobility) -> Callable[[np.ndarray, np.ndarray], float]:
+    """Largest α keeping the interior densities of ``x + αp`` inside the mobility's domain
+    (density variables, :func:`_density_variables`)."""
+    n_y = (act.problem.steps - 1) * act.grid.size
+    level = act.mass / (act.vol * act.grid.size)
+
+    def bound(x: np.ndarray, p: np.ndarray) -> float:
+        y, d = x[:n_y].reshape(-1, act.grid.size), p[:n_y].reshape(-1, act.grid.size)
+        rho = y - y.mean(axis=1, keepdims=True) + level
+        d = d - d.mean(axis=1, keepdims=True)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            down = np.where(d < 0, (rho - mob.lower) / -d, np.inf)
+            up = np.where(d > 0, (mob.upper - rho) / d, np.inf)
+        return float(min(down.min(initial=np.inf), up.min(initial=np.inf)))
+
+    return bound
+
+
 def _inside(mob: Mobility, rho: np.ndarray) -> bool:
     return bool(np.all(rho > mob.lower) and np.all(rho < mob.upper))
 
@@ -649,3 +715,191 @@ def _centre_control(velocity: list[np.ndarray], grid: Grid, k_steps: int) -> np.
 def _describe(obj: object) -> dict[str, object]:
     describe = getattr(obj, "describe", None)
     return describe() if callable(describe) else {"repr": repr(obj)}
+
+
+# --------------------------------------------------------------------------- Newton
+
+
+def _interior_newton(objective: _Objective, x0: np.ndarray, options: DirectOptions,
+                     callback: Callable[[int, float, float], None] | None) -> NewtonResult:
+    r"""Truncated Newton on J - μ|c|Σ log(ρ - lower) (+ log(upper - ρ)) over the interior
+    densities, for μ = μ₀, μ₀/10, ... down to a μ whose bias on J (μ|c| per barrier term, the
+    duality gap of a log barrier: Nocedal & Wright, 2006, §19.2) is below tol × J; each stage is
+    warm-started from the last, the last one solved to ``options.tol``. Without the barrier,
+    Newton steps in ρ keep pushing the far tails (optimal values ~1e-20) below zero and the
+    fraction-to-the-boundary rule stalls."""
+    j0 = objective.value(x0)
+    act = objective.act
+    terms = (act.problem.steps - 1) * act.grid.size * (2 if math.isfinite(objective.mob.upper)
+                                                         else 1)
+    mu_end = options.tol * max(abs(j0), 1e-300) / (terms * act.vol)
+    mu = max(MU0 * abs(j0) / (terms * act.vol), mu_end)
+    precond = _preconditioner_1d(objective)
+    x, iterations, cg, history, start = x0, 0, 0, [], time.perf_counter()
+    while True:
+        objective.barrier = mu
+        last = mu <= mu_end
+        offset = time.perf_counter() - start
+        opt = minimise(objective.second_order, objective.value, x, precond,
+                       max_iter=max(options.max_iter - iterations, 1), max_cg=options.max_cg,
+                       tol=options.tol if last else 1e-6, gtol=options.gtol if last else 0.0,
+                       max_step=_max_step(act, objective.mob), callback=callback)
+        history += [{**h, "seconds": h["seconds"] + offset, "barrier": mu} for h in opt.history]
+        x, iterations, cg = opt.x, iterations + opt.iterations, cg + opt.cg_iterations
+        if last or iterations >= options.max_iter:
+            break
+        mu = max(mu * MU_FACTOR, mu_end)
+    objective.barrier = 0.0
+    value, grad = objective.value_grad(x)
+    gnorm = float(np.abs(grad).max()) if grad is not None else math.nan
+    message = opt.message.split(" (")[0] + f" ({iterations} Newton iterations, {cg} CG iterations)"
+    return NewtonResult(x, value, gnorm, iterations, cg, opt.status, message, history)
+
+
+class _Objective:
+    """J as a function of the free variables, with the domain guard; value, gradient and
+    Hessian–vector products (double backward) by torch autograd."""
+
+    def __init__(self, act: DirectAction, unpack: Unpack, mob: Mobility) -> None:
+        self.act, self.unpack, self.mob = act, unpack, mob
+        self.barrier = 0.0
+
+    def _evaluate(self, x: Any) -> Any:
+        import torch
+
+        rho, stream = self.unpack(x)
+        if not _inside(self.mob, rho[1:-1].detach().numpy()):
+            return None
+        value = self.act.value(rho, stream)
+        if self.barrier > 0:
+            inner = rho[1:-1]
+            value = value - self.barrier * self.act.vol * torch.log(inner - self.mob.lower).sum()
+            if math.isfinite(self.mob.upper):
+                value = value - (self.barrier * self.act.vol
+                                 * torch.log(self.mob.upper - inner).sum())
+        return value if math.isfinite(float(value.detach())) else None
+
+    def value(self, x_np: np.ndarray) -> float:
+        import torch
+
+        with torch.no_grad():
+            value = self._evaluate(torch.from_numpy(x_np))
+        return math.inf if value is None else float(value)
+
+    def value_grad(self, x_np: np.ndarray) -> tuple[float, np.ndarray | None]:
+        import torch
+
+        x = torch.from_numpy(x_np).requires_grad_(True)
+        value = self._evaluate(x)
+        if value is None:
+            return math.inf, None
+        (grad,) = torch.autograd.grad(value, x)
+        return float(value.detach()), grad.numpy().copy()
+
+    def second_order(self, x_np: np.ndarray) -> SecondOrder | None:
+        import torch
+
+        x = torch.from_numpy(x_np.copy()).requires_grad_(True)
+        value = self._evaluate(x)
+        if value is None:
+            return None
+        (grad,) = torch.autograd.grad(value, x, create_graph=True)
+
+        def hessp(v: np.ndarray) -> np.ndarray:
+            (hv,) = torch.autograd.grad(grad, x, grad_outputs=torch.from_numpy(v),
+                                        retain_graph=True)
+            return hv.numpy().copy()
+
+        return SecondOrder(float(value.detach()), grad.detach().numpy().copy(), hessp)
+
+
+def _preconditioner_1d(objective: _Objective) -> Callable[[np.ndarray], Operator]:
+    r"""Gauss–Newton preconditioner of the 1D action, built in cumulative-mass variables.
+
+    In the masses left of each face, :math:`C_{k,i}`, every term of J is local:
+    :math:`\rho_{k,i} = (C_{k,i} - C_{k,i-1})/|c|`, :math:`F_{k+1/2,i} = -(C_{k+1,i} -
+    C_{k,i})/\Delta t`. With the mean field Φ̄ frozen, J = Σ r² with residuals
+    :math:`r = \sqrt{w/\chi_f}\,(j - b)`, :math:`w = |c|\Delta t/(2\sigma^2)`, and the
+    Gauss–Newton matrix :math:`M_C = 2 J_r^\top J_r` is sparse (a residual on step k+1/2, face i
+    sees C at nodes k, k+1 and faces i-1..i+1), so J_r comes from 6 Jacobian–vector products
+    with the variables coloured by (k mod 2, i mod 3) (Curtis, Powell & Reid, IMA J. Appl.
+    Math. 1974). It is mapped to the density variables y (ρ = Πy + M/(n|c|), Π the projection
+    on zero-sum slices) through the linear map P: δy ↦ δC = cumsum(|c|Πδy), invertible on
+    zero-sum slices: M_y⁻¹ = P⁻¹ M_C⁻¹ P⁻ᵀ.
+    """
+    import scipy.sparse as sp
+    import torch
+    from scipy.sparse.linalg import splu
+
+    act, unpack, mob = objective.act, objective.unpack, objective.mob
+    k_steps, n = act.problem.steps, act.grid.shape[0]
+    vol, dt, mass = act.vol, act.dt, act.mass
+    weight = vol * dt / (2.0 * act.noise**2)
+    n_int, n_face = k_steps - 1, n - 1
+    kk, ii = np.meshgrid(np.arange(n_int), np.arange(n_face), indexing="ij")
+    s_row, f_row = np.meshgrid(np.arange(k_steps), np.arange(n_face), indexing="ij")
+    zero, total = torch.zeros((k_steps + 1, 1), dtype=torch.float64), None
+
+    # ρ_{k,i} = (C_{k,i} - C_{k,i-1})/|c| on every interior slice, as a sparse matrix
+    one = sp.diags([np.ones(n_face), -np.ones(n_face)], [0, -1], shape=(n, n_face)) / vol
+    diff = sp.block_diag([one] * n_int, format="csr")
+
+    def build(x_np: np.ndarray) -> Operator:
+        nonlocal total
+        with torch.no_grad():
+            rho, _ = unpack(torch.from_numpy(x_np))
+            phi = act.mean_field(0.5 * (rho[1:] + rho[:-1]))
+            cum = torch.cumsum(rho * vol, dim=1)[:, :-1]
+        total = torch.full((k_steps + 1, 1), mass, dtype=torch.float64)
+
+        def residuals(c_int: Any) -> Any:
+            c = torch.cat([cum[:1], c_int, cum[-1:]], dim=0)
+            full = torch.cat([zero, c, total], dim=1)
+            r = (full[:, 1:] - full[:, :-1]) / vol
+            flux = -(c[1:] - c[:-1]) / dt
+            ((j, b, chi, _),) = act.face_terms(r, fluxes=(flux,), phi=phi)
+            # floored: χ^(-3/2) of the far tails (ρ ~ 1e-200) would overflow; an approximation
+            # is all a preconditioner needs
+            return (j - b) * torch.sqrt(weight / chi.clamp_min(CHI_FLOOR))
+
+        rows, cols, vals = [], [], []
+        base = cum[1:-1].clone()
+        for a in range(2):
+            for c3 in range(3):
+                seed = torch.from_numpy(((kk % 2 == a) & (ii % 3 == c3)).astype(float))
+                _, out = torch.func.jvp(residuals, (base,), (seed,))
+                out = out.numpy()
+                # the one variable of this colour each residual (s, f) sees
+                k_var = np.where((s_row - 1) % 2 == a, s_row - 1, s_row)
+                i_var = f_row - 1 + (c3 - (f_row - 1)) % 3
+                ok = (k_var >= 0) & (k_var < n_int) & (i_var >= 0) & (i_var < n_face)
+                rows.append((s_row * n_face + f_row)[ok])
+                cols.append((k_var * n_face + i_var)[ok])
+                vals.append(out[ok])
+        jac = sp.csr_matrix((np.concatenate(vals), (np.concatenate(rows), np.concatenate(cols))),
+                            shape=(k_steps * n_face, n_int * n_face))
+        gn = 2.0 * (jac.T @ jac)
+        if objective.barrier > 0:
+            # barrier -μ|c|Σ log(ρ - lower) (+ log(upper - ρ)): diagonal in ρ = D C
+            r_int = rho[1:-1].numpy()
+            curv = 1.0 / (r_int - mob.lower) ** 2
+            if math.isfinite(mob.upper):
+                curv = curv + 1.0 / (mob.upper - r_int) ** 2
+            gn = gn + diff.T @ sp.diags(objective.barrier * vol * curv.ravel()) @ diff
+        # symmetric diagonal scaling first: the weights 1/χ span ~100 orders of magnitude
+        scale = np.sqrt(gn.diagonal())
+        scale[~(scale > 0)] = 1.0
+        inv = sp.diags(1.0 / scale)
+        gn = (inv @ gn @ inv + 1e-12 * sp.identity(gn.shape[0])).tocsc()
+        lu = splu(gn)
+        def apply(q: np.ndarray) -> np.ndarray:
+            big_g = q.reshape(n_int, n) / vol
+            big_g = big_g - big_g[:, -1:]
+            g_c = big_g[:, :-1] - big_g[:, 1:]
+            p_c = (lu.solve(g_c.ravel() / scale) / scale).reshape(n_int, n_face)
+            pad = np.pad(p_c, ((0, 0), (1, 1)))
+            return ((pad[:, 1:] - pad[:, :-1]) / vol).ravel()
+
+        return apply
+
+    return build

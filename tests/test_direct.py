@@ -91,6 +91,10 @@ def test_bad_options():
         DirectOptions(total_mass=0.0)
     with pytest.raises(InputError, match="warm_start"):
         DirectOptions(warm_start="nope")
+    with pytest.raises(InputError, match="method"):
+        DirectOptions(method="nope")
+    with pytest.raises(InputError, match="max_cg"):
+        DirectOptions(max_cg=0)
     with pytest.raises(InputError, match="Mobility"):
         DirectOptions(mobility="exclusion")
 
