@@ -29,7 +29,10 @@ def mfbridge(*args: str) -> str:
     """Run the mfbridge console script from the repository root; return its output (stdout and
     stderr together); stop with the output when it fails."""
     script = Path(sys.executable).with_name("mfbridge")
-    env = {**os.environ, "OPENBLAS_NUM_THREADS": "1"}
+    # PYTHONPATH: the console script imports this checkout, not whichever one is installed
+    env = {**os.environ, "OPENBLAS_NUM_THREADS": "1",
+           "PYTHONPATH": os.pathsep.join(p for p in (str(ROOT), os.environ.get("PYTHONPATH"))
+                                         if p)}
     done = subprocess.run([str(script), *args], cwd=ROOT, env=env, text=True,
                           stdout=subprocess.PIPE, stderr=subprocess.STDOUT, check=False)
     if done.returncode != 0:

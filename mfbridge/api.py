@@ -102,9 +102,12 @@ def build_problem(cfg: Any) -> BridgeProblem:
     )
 
 
-def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None) -> BridgeResult:
+def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
+          warm_start: BridgeResult | None = None) -> BridgeResult:
     """Solve the bridge that ``cfg`` (from :func:`compose`) describes; the resolved config is
-    stored in the result."""
+    stored in the result. ``warm_start``: a result on the same grid and steps that starts the
+    fixed-point solver (see :func:`~mfbridge.fixed_point.solve_bridge`); the config's
+    ``warm_start`` entry is read by the command line (:mod:`mfbridge.cli`), not here."""
     from omegaconf import OmegaConf
 
     problem = build_problem(cfg)
@@ -113,6 +116,9 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None) -> Brid
         from mfbridge.direct import DirectOptions, solve_direct
 
         if isinstance(options, DirectOptions):
+            if warm_start is not None:
+                raise InputError("the direct solver takes no warm start from a result (it has "
+                                 "its own: solver.warm_start=displacement)")
             progress = None
             if callback is not None:
                 def progress(it: int, cost: float, grad: float) -> None:
@@ -124,6 +130,6 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None) -> Brid
     if not isinstance(options, SolverOptions):
         raise InputError("the solver group must build a mfbridge.fixed_point.SolverOptions or "
                          "a mfbridge.direct.DirectOptions")
-    result = solve_bridge(problem, options, callback)
+    result = solve_bridge(problem, options, callback, warm_start=warm_start)
     result.config = OmegaConf.to_container(cfg, resolve=True)
     return result

@@ -8,11 +8,19 @@ call. A run folder (``hydra.run.dir``, or one sub-folder of ``hydra.sweep.dir`` 
 * ``summary.json``: cost and its parts, status, timings, model;
 * ``config.yaml``: the resolved configuration;
 * ``record.json``: the run record: overrides, group choices, versions, git state, input-file
-  hashes, times, status and the error of a failed run (see :mod:`mfbridge.records`);
+  hashes, times, status, the error of a failed run and the warm start (see
+  :mod:`mfbridge.records`);
 * ``complete.json``: the completion marker, written last, with the SHA-256 of the result,
   summary and record (a folder without it was killed or failed);
 * figures (``density.png``, ``moments.png``, ``convergence.png``; unless ``figures=false``);
 * the log (``mfbridge.log``) and Hydra's own ``.hydra/`` record.
+
+Warm starts (config entry ``warm_start``): ``auto`` (default) is ``nearest`` in a sweep and
+``none`` in a single run; ``nearest`` starts the solver from the finished, converged run of the
+same sweep folder nearest in the swept numbers (:func:`mfbridge.records.nearest_run` defines
+the distance; the first jobs of a sweep, and parallel jobs that start together, start cold);
+``none`` always starts cold; a path starts from that run folder. ``record.json`` says which run
+was used, or why none was. The answer does not depend on the start beyond the solver tolerance.
 
 Errors: a single run that fails exits with status 2 (an input or solver error) or with
 Hydra's traceback (anything else). In a multirun a failing job is logged and recorded as failed
@@ -24,12 +32,15 @@ from __future__ import annotations
 import logging
 import sys
 import time
+from dataclasses import asdict
 from pathlib import Path
 from typing import Any
 
+from mfbridge import records
 from mfbridge.api import CONF_DIR, solve
 from mfbridge.errors import InputError, MFBridgeError
 from mfbridge.fixed_point import Iteration
+from mfbridge.records import WarmStart
 from mfbridge.result import BridgeResult
 
 log = logging.getLogger("mfbridge")
@@ -42,8 +53,8 @@ def _progress(it: Iteration) -> None:
     )
 
 
-def _job_label() -> str | None:
-    """``"#num override_dirname"`` of the running job of a Hydra multirun, else ``None``."""
+def _multirun() -> Any:
+    """Hydra's config of the running job when it is a job of a multirun, else ``None``."""
     try:
         from hydra.core.hydra_config import HydraConfig
     except ImportError:  # pragma: no cover - hydra is a dependency
@@ -53,7 +64,45 @@ def _job_label() -> str | None:
     hc = HydraConfig.get()
     if hc.mode is None or hc.mode.name != "MULTIRUN":
         return None
-    return f"#{hc.job.get('num')} {hc.job.override_dirname}".strip()
+    return hc
+
+
+def _job_label() -> str | None:
+    """``"#num override_dirname"`` of the running job of a Hydra multirun, else ``None``."""
+    hc = _multirun()
+    return None if hc is None else f"#{hc.job.get('num')} {hc.job.override_dirname}".strip()
+
+
+def choose_warm_start(config: dict[str, Any], out: Path, sweep_dir: Path | None
+                      ) -> tuple[BridgeResult | None, WarmStart]:
+    """The result that starts the solver for a run of the resolved ``config`` into ``out`` (or
+    ``None``) and what to record about it; ``sweep_dir`` is the sweep folder of a multirun job.
+    """
+    from mfbridge.result import load
+
+    choice = config.get("warm_start", "auto")
+    choice = "auto" if choice is None else choice
+    if not isinstance(choice, str) or not choice:
+        raise InputError(f"warm_start must be auto, nearest, none or a run folder, got {choice!r}")
+    if choice == "none":
+        return None, WarmStart(mode="none", reason="warm_start=none")
+    if choice in ("auto", "nearest"):
+        if sweep_dir is None:
+            return None, WarmStart(mode="none" if choice == "auto" else "nearest",
+                                   reason="a single run, not a job of a sweep")
+        folder, warm = records.nearest_run(config, sweep_dir, exclude=out)
+    else:
+        warm = records.chosen_run(config, choice)
+        folder = Path(warm.path) if warm.path else None
+    if folder is None:
+        return None, warm
+    try:
+        return load(folder), warm
+    except InputError as exc:
+        if warm.mode == "path":
+            raise
+        # e.g. removed by the user meanwhile: a cold start gives the same answer
+        return None, WarmStart(mode=warm.mode, reason=f"could not read {folder}: {exc}")
 
 
 class _LabelFilter(logging.Filter):
@@ -68,8 +117,8 @@ class _LabelFilter(logging.Filter):
         return True
 
 
-def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None = None
-        ) -> BridgeResult:
+def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None = None,
+        sweep_dir: str | Path | None = None) -> BridgeResult:
     """Solve ``cfg``, write the result, the resolved config, the run record and figures into
     ``output_dir``; return the result.
 
@@ -78,12 +127,13 @@ def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None
     complete run of a different config is an :class:`~mfbridge.errors.InputError`. A folder
     left by a killed or failed run is recomputed. BLAS pools are capped at one thread for the
     whole run (parallel sweep jobs must not fight over the cores). ``record_extra`` sets fields
-    of the :class:`~mfbridge.records.RunRecord` (e.g. ``replay_of``).
+    of the :class:`~mfbridge.records.RunRecord` (e.g. ``replay_of``). ``sweep_dir`` is where
+    the finished runs of the same sweep are looked for a warm start (default: Hydra's
+    ``hydra.sweep.dir`` in a multirun job; see :func:`choose_warm_start`).
     """
     from omegaconf import OmegaConf
     from threadpoolctl import threadpool_limits
 
-    from mfbridge import records
     from mfbridge.result import load
 
     out = Path(output_dir)
@@ -103,15 +153,26 @@ def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None
             log.info("complete result already in %s: skipped (delete the folder to recompute)",
                      out.resolve())
             return load(out)
+        if sweep_dir is None and (hc := _multirun()) is not None:
+            sweep_dir = hc.sweep.dir
+        warm, warm_record = choose_warm_start(config, out,
+                                              None if sweep_dir is None else Path(sweep_dir))
+        if warm_record.path is not None:
+            log.info("warm start from %s (%s)", warm_record.path,
+                     ", ".join(f"{k}: {a} there" for k, (a, _) in
+                               warm_record.differences.items()) or "same numbers")
+        else:
+            log.info("cold start: %s", warm_record.reason)
         out.mkdir(parents=True, exist_ok=True)
         records.clear_marker(out)
-        record = records.new_record(config, blas_threads=1, **(record_extra or {}))
+        record = records.new_record(config, blas_threads=1, warm_start=asdict(warm_record),
+                                    **(record_extra or {}))
         records.write_record(out, record)
         (out / "config.yaml").write_text(OmegaConf.to_yaml(cfg, resolve=True))
         start = time.perf_counter()
         try:
             with threadpool_limits(limits=1):
-                result = solve(cfg, callback=_progress)
+                result = solve(cfg, callback=_progress, warm_start=warm)
                 result.save(out)
                 log.info("%s", result.message)
                 log.info("cost J = %.8g  (kinetic %.6g, drift %.6g, free-energy change %.6g)",

@@ -14,7 +14,9 @@ written by :func:`mfbridge.cli.run` holds
   after the run.
 
 Both are written atomically (temporary file, then rename). :class:`SweepProgress` is a Hydra
-callback that reports how many runs of a sweep have finished. Nothing here does numerics.
+callback that reports how many runs of a sweep have finished. :func:`nearest_run` picks the
+finished run of a sweep that warm-starts a new job (see "warm starts" below). Nothing here does
+numerics.
 """
 
 from __future__ import annotations
@@ -23,6 +25,7 @@ import datetime as _dt
 import hashlib
 import json
 import logging
+import math
 import platform
 import subprocess
 import sys
@@ -56,7 +59,9 @@ class RunRecord:
     ``overrides`` are the Hydra task overrides (``["interaction.strength=2", ...]``) and
     ``choices`` the selected option of every config group, both ``None`` outside Hydra;
     ``inputs`` maps each data file named in the config to its absolute path and SHA-256;
-    ``git`` is ``{"commit": ..., "dirty": ...}`` or ``None`` when mfbridge is not in a checkout.
+    ``git`` is ``{"commit": ..., "dirty": ...}`` or ``None`` when mfbridge is not in a checkout;
+    ``warm_start`` is a :class:`WarmStart` as a dict (which run started the solver, or why none
+    did; ``None`` in records written before warm starts existed).
     """
 
     config: dict[str, Any]
@@ -75,6 +80,7 @@ class RunRecord:
     status: str = "running"
     error: str | None = None
     replay_of: str | None = None
+    warm_start: dict[str, Any] | None = None
     format_version: int = RECORD_FORMAT
 
 
@@ -384,3 +390,179 @@ class SweepProgress(_Callback):  # type: ignore[misc,valid-type]
             if not entry.complete:
                 log.warning("incomplete run %s: %s", entry.folder, entry.problem)
         log.info("collect with: mfbridge collect %s", sweep_dir)
+
+
+# ------------------------------------------------------------------------------ warm starts
+#
+# A job of a sweep may start the solver from the result of a finished job of the same sweep
+# (``solve_bridge(..., warm_start=...)``). Two runs are *compatible* when their resolved configs
+# differ only in numeric entries (int or float, not bool) outside SAME_KEYS, ignoring
+# IGNORED_KEYS: same grid shape, steps, solver method, endpoints, potentials' kinds... Among the
+# compatible converged runs the nearest one is chosen, with the distance
+#
+#     d(a, b) = sqrt( sum_k ((a_k - b_k) / R_k)^2 )
+#
+# over the entries k where the two configs differ, R_k being the range (max - min) of entry k
+# over the whole sweep: the jobs ``multirun.yaml`` asks for, every run folder's record and the
+# new job. R_k >= |a_k - b_k| > 0, so each term lies in (0, 1] whatever the units of k. (Plain
+# relative differences |a_k - b_k| / max(|a_k|, |b_k|) cannot rank neighbours of 0: from 0, both
+# 1 and 2 are at relative distance 1.) Ties go to the folder whose path sorts first.
+
+#: Config entries that do not change the solution and may differ freely.
+WARM_IGNORED_KEYS = frozenset({"figures", "warm_start"})
+#: Numeric entries that must be equal: the warm start lives on the same grid and time steps.
+WARM_SAME_KEYS = frozenset({"grid.shape", "steps"})
+#: The solver options that accept a warm start (the fixed-point solver).
+WARM_SOLVER = "mfbridge.fixed_point.SolverOptions"
+
+
+@dataclass(frozen=True)
+class WarmStart:
+    """How a run was started, as ``record.json`` keeps it (field ``warm_start``).
+
+    ``mode`` is what the config asked for (``"nearest"``, ``"none"`` or ``"path"``); ``path`` the
+    run folder whose result started the solver (``None``: cold start, ``reason`` says why);
+    ``overrides`` that run's command-line overrides; ``differences`` maps each config entry that
+    differs to ``[value of the warm-start run, value of this run]``; ``distance`` is d above;
+    ``sha256`` the hash of that run's ``result.nc`` when it was read (replay checks it).
+    """
+
+    mode: str
+    reason: str
+    path: str | None = None
+    overrides: list[str] | None = None
+    differences: dict[str, list[Any]] = field(default_factory=dict)
+    distance: float | None = None
+    sha256: str | None = None
+
+
+def flatten(config: Any, prefix: str = "") -> dict[str, Any]:
+    """Dotted keys of the leaves of nested dicts (lists are leaves): ``{"grid.shape": 32}``."""
+    if not isinstance(config, dict):
+        return {prefix: config}
+    out: dict[str, Any] = {}
+    for key, value in config.items():
+        out.update(flatten(value, f"{prefix}.{key}" if prefix else str(key)))
+    return out
+
+
+def _is_number(value: Any) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+
+
+def warm_differences(theirs: dict[str, Any], ours: dict[str, Any]
+                     ) -> tuple[dict[str, list[Any]], str | None]:
+    """The config entries in which a finished run (``theirs``) differs from a new one
+    (``ours``), as ``{key: [their value, our value]}``, and ``None``; or ``({}, reason)`` when
+    the run cannot warm-start the new one (a non-numeric entry, the grid shape or the number of
+    steps differ, or the solver takes no warm start)."""
+    a, b = flatten(theirs), flatten(ours)
+    if b.get("solver._target_") != WARM_SOLVER:
+        return {}, f"the solver {b.get('solver._target_')} takes no warm start"
+    differences: dict[str, list[Any]] = {}
+    for key in sorted(set(a) | set(b)):
+        if key.split(".")[0] in WARM_IGNORED_KEYS or a.get(key) == b.get(key):
+            continue
+        if key in WARM_SAME_KEYS:
+            return {}, f"{key} differs ({a.get(key)!r} there, {b.get(key)!r} here)"
+        if key not in a or key not in b or not (_is_number(a[key]) and _is_number(b[key])):
+            return {}, f"{key} differs ({a.get(key)!r} there, {b.get(key)!r} here)"
+        differences[key] = [a[key], b[key]]
+    return differences, None
+
+
+def _sweep_values(sweep_dir: Path, configs: list[dict[str, Any]]) -> dict[str, list[float]]:
+    """Numeric values each config entry takes over a sweep: the jobs of ``multirun.yaml`` (when
+    readable) and ``configs``."""
+    values: dict[str, list[float]] = {}
+    for config in configs:
+        for key, value in flatten(config).items():
+            if _is_number(value):
+                values.setdefault(key, []).append(float(value))
+    multirun = sweep_dir / "multirun.yaml"
+    if multirun.is_file():
+        from omegaconf import OmegaConf
+
+        try:
+            jobs = expected_jobs(OmegaConf.load(multirun)) or []
+        except Exception:  # unreadable: the run folders' configs still give the ranges
+            jobs = []
+        for job in jobs:
+            for text in job:
+                key, _, value = text.lstrip("+~").partition("=")
+                try:
+                    number = float(value)
+                except ValueError:
+                    continue
+                if math.isfinite(number):
+                    values.setdefault(key, []).append(number)
+    return values
+
+
+def warm_distance(differences: dict[str, list[Any]], values: dict[str, list[float]]) -> float:
+    """d = sqrt(sum_k ((a_k - b_k) / R_k)^2) with R_k the range of entry k in ``values``
+    (which must hold both a_k and b_k, so that R_k > 0)."""
+    total = 0.0
+    for key, (a, b) in differences.items():
+        spread = max(values[key]) - min(values[key])
+        total += ((float(a) - float(b)) / spread) ** 2
+    return math.sqrt(total)
+
+
+def nearest_run(config: dict[str, Any], sweep_dir: str | Path,
+                exclude: str | Path | None = None) -> tuple[Path | None, WarmStart]:
+    """The finished, converged run under ``sweep_dir`` nearest to a new run of the resolved
+    ``config`` (distance d above, among compatible runs), and the :class:`WarmStart` to record;
+    ``(None, WarmStart(reason=...))`` when there is none. ``exclude`` is the new run's folder."""
+    root = Path(sweep_dir)
+    skip = Path(exclude).resolve() if exclude is not None else None
+    entries = [e for e in scan_sweep(root) if e.folder.resolve() != skip] if root.is_dir() else []
+    finished = [e for e in entries if e.complete and e.record is not None]
+    converged = [e for e in finished if e.record is not None and e.record.status == "converged"]
+    candidates: list[tuple[RunEntry, dict[str, list[Any]]]] = []
+    reasons: list[str] = []
+    for entry in converged:
+        assert entry.record is not None
+        differences, reason = warm_differences(entry.record.config, config)
+        if reason is None:
+            candidates.append((entry, differences))
+        else:
+            reasons.append(reason)
+    if not candidates:
+        if not finished:
+            why = f"no finished run in {root} yet"
+        elif not converged:
+            why = f"no converged run among the {len(finished)} finished in {root}"
+        else:
+            why = (f"none of the {len(converged)} converged runs in {root} is compatible "
+                   f"(first: {reasons[0]})")
+        return None, WarmStart(mode="nearest", reason=why)
+    values = _sweep_values(root, [config, *(e.record.config for e in entries if e.record)])
+    scored = sorted(((warm_distance(diff, values), str(entry.folder), entry, diff)
+                     for entry, diff in candidates), key=lambda row: row[:2])
+    distance, _, entry, differences = scored[0]
+    assert entry.record is not None
+    return entry.folder, WarmStart(
+        mode="nearest", path=str(entry.folder.resolve()), overrides=entry.record.overrides,
+        differences=differences, distance=distance, sha256=sha256(entry.folder / RESULT_FILE),
+        reason=f"nearest of {len(candidates)} compatible converged runs in {root}",
+    )
+
+
+def chosen_run(config: dict[str, Any], folder: str | Path) -> WarmStart:
+    """The :class:`WarmStart` of a run named explicitly (``warm_start=/path/to/run``): it must be
+    a complete run compatible with ``config``, else :class:`InputError`."""
+    path = Path(folder).expanduser()
+    record = read_record(path)
+    if not is_complete(path):
+        raise InputError(f"warm_start={folder}: the run did not complete (no valid "
+                         f"{COMPLETE_FILE}); name a finished run folder")
+    differences, reason = warm_differences(record.config, config)
+    if reason is not None:
+        raise InputError(f"warm_start={folder} cannot start this run: {reason}; a warm start "
+                         "must have the same grid, steps and model, differing only in numbers")
+    if record.status != "converged":
+        log.warning("warm start from %s, a run that did not converge", path)
+    return WarmStart(mode="path", path=str(path.resolve()), overrides=record.overrides,
+                     differences=differences, sha256=sha256(path / RESULT_FILE),
+                     reason="named in the config")

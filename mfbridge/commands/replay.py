@@ -6,6 +6,12 @@ stored result: the largest absolute difference of the density and the cost diffe
 verdict is printed; the exit status is 0 when both are within the tolerance, 1 when not, 2 on
 an unusable record. Package versions that differ from the record are reported as warnings, and
 a stored result whose bytes differ from the hashes written at the end of the run is flagged.
+
+A run that was warm-started (``warm_start`` in its record) is replayed from the same recorded
+warm-start run, whose ``result.nc`` must still hash to the recorded SHA-256: then the replay is
+bit for bit. If that run is gone or was changed, the replay says so and starts cold; the answer
+then agrees only to within the solver tolerance. A run that started cold is replayed cold
+(``warm_start=none``), whatever folder it sits in.
 """
 
 from __future__ import annotations
@@ -16,6 +22,7 @@ import logging
 import sys
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -86,6 +93,27 @@ def _version_warnings(recorded: dict[str, str | None]) -> list[str]:
             if recorded.get(name) != current.get(name)]
 
 
+def _recorded_warm_start(warm: dict[str, Any] | None) -> str:
+    """The ``warm_start`` config value that repeats the recorded start, printing what it does."""
+    from mfbridge import records
+    from mfbridge.result import RESULT_FILE
+
+    path = (warm or {}).get("path")
+    if not path:
+        print("warm start: none recorded; replaying from a cold start")
+        return "none"
+    folder = Path(path)
+    overrides = " ".join((warm or {}).get("overrides") or []) or "no overrides"
+    if (records.is_complete(folder) and (folder / RESULT_FILE).is_file()
+            and records.sha256(folder / RESULT_FILE) == (warm or {}).get("sha256")):
+        print(f"warm start: re-solving from the recorded warm-start run {folder} ({overrides})")
+        return str(folder)
+    print(f"warning: the recorded warm-start run {folder} ({overrides}) is missing or changed "
+          "since (its result.nc does not match the recorded SHA-256): replaying from a cold "
+          "start, expect agreement within the solver tolerance, not bit for bit")
+    return "none"
+
+
 def replay(run_dir: Path, out: Path | None, tol: float, figures: bool) -> int:
     """Replay ``run_dir`` into ``out``; print the comparison and verdict; return the exit code."""
     from omegaconf import OmegaConf
@@ -117,6 +145,7 @@ def replay(run_dir: Path, out: Path | None, tol: float, figures: bool) -> int:
               f"(SHA-256 differs from {records.COMPLETE_FILE})")
     cfg = OmegaConf.create(record.config)
     cfg.figures = bool(figures)
+    cfg.warm_start = _recorded_warm_start(record.warm_start)
     replayed = run(cfg, out, record_extra={"replay_of": str(run_dir.resolve()),
                                            "overrides": record.overrides,
                                            "choices": record.choices})
