@@ -135,3 +135,11 @@ def test_cli_run_3d(tmp_path: Path) -> None:
     np.testing.assert_allclose(result.mean[0], [-0.8, 0.0, 0.4], atol=1e-2)
     np.testing.assert_allclose(result.mean[-1], [0.9, 0.0, -0.5], atol=1e-2)
     assert mfbridge.load(tmp_path).grid.shape == (18, 18, 18)
+
+
+def test_sweep_density_panels_accept_3d(solved_3d: BridgeResult, tmp_path: Path) -> None:
+    from mfbridge.commands.collect import Row, plot_densities
+
+    row = Row(run="a", params={}, status="converged", folder=tmp_path)
+    path = plot_densities(tmp_path / "densities.png", [], [row], [solved_3d])
+    assert path.read_bytes()[:8] == PNG_MAGIC
