@@ -252,16 +252,24 @@ def _child_2d(kind: str, n: int, steps: int, queue: Any) -> None:
         queue.put({"kind": kind, "error": f"{type(exc).__name__}: {exc}"})
 
 
-def _run_2d(kind: str, n: int, steps: int) -> dict[str, Any]:
+def problem_nd(kind: str, n: int, steps: int, mean0: list[float], cov0: list[float],
+               mean1: list[float], cov1: list[float]) -> BridgeProblem:
+    """The multi-dimensional case: n cells per axis on [-4, 4]^d, diagonal Gaussian endpoints,
+    U = |x|²/2, W = GaussianCore(1, 0.5) (``kind="gaussian-core"``) or 1.5|z|²/2 (``"lq"``)."""
+    dim = len(mean0)
     interaction = (GaussianCore(strength=1.0, range=0.5) if kind == "gaussian-core"
                    else HarmonicInteraction(STRENGTH))
-    problem = BridgeProblem(
-        grid=Grid([-4.0, -4.0], [4.0, 4.0], [n, n]),
-        initial=Gaussian(MEAN0_2D, COV0_2D),
-        final=Gaussian(MEAN1_2D, COV1_2D),
+    return BridgeProblem(
+        grid=Grid([-4.0] * dim, [4.0] * dim, [n] * dim),
+        initial=Gaussian(mean0, cov0),
+        final=Gaussian(mean1, cov1),
         noise=NOISE, horizon=HORIZON, steps=steps,
         confinement=Harmonic(STIFFNESS), interaction=interaction,
     )
+
+
+def _run_2d(kind: str, n: int, steps: int) -> dict[str, Any]:
+    problem = problem_nd(kind, n, steps, MEAN0_2D, COV0_2D, MEAN1_2D, COV1_2D)
     options = SolverOptions(route="operator")
     rss_before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     hwm_before = vm_hwm_mb()

@@ -94,6 +94,22 @@ class BridgeResult:
         """Cell masses, shape (K+1, *grid.shape); each slice sums to 1."""
         return self.density * self.grid.cell_volume
 
+    def marginal(self, axes: int | tuple[int, ...]) -> np.ndarray:
+        r"""Marginal density of the kept spatial ``axes``: :math:`\rho_t` integrated over the
+        other axes (cell masses summed), divided by the kept cells' area.
+
+        Shape (K+1, *[grid.shape[a] for a in axes]), units 1/length^len(axes); summed over the
+        kept cells and multiplied by their area it gives 1 at every time. Axes are kept in
+        increasing order.
+        """
+        kept = sorted({axes} if isinstance(axes, (int, np.integer)) else set(axes))
+        if not kept or any(not 0 <= a < self.grid.dim for a in kept):
+            raise InputError(f"marginal axes must be distinct integers in [0, {self.grid.dim}), "
+                             f"got {axes!r}")
+        dropped = tuple(1 + a for a in range(self.grid.dim) if a not in kept)
+        area = float(np.prod([self.grid.spacing[a] for a in kept]))
+        return self.masses.sum(axis=dropped) / area
+
     def summary(self) -> dict[str, Any]:
         """The scalar record written to ``summary.json``."""
         return {

@@ -287,7 +287,8 @@ def plot_mean_paths(path: Path, keys: list[str], rows: list[Row], results: list[
 
 
 def plot_densities(path: Path, keys: list[str], rows: list[Row], results: list[Any]) -> Path:
-    """A grid of density heat maps, one panel per complete run (1D: ρ(t, x); 2D: ρ at T/2).
+    """A grid of density heat maps, one panel per complete run (1D: ρ(t, x); 2D: ρ at T/2;
+    3D: the x0-x1 marginal at T/2).
     With two swept parameters the panels form their table (rows: first, columns: second)."""
     import matplotlib
 
@@ -320,7 +321,9 @@ def plot_densities(path: Path, keys: list[str], rows: list[Row], results: list[A
         else:
             mid = len(result.times) // 2
             g = result.grid
-            ax.imshow(result.density[mid].T, origin="lower", cmap="viridis",
+            # in 3D: the marginal on the x0-x1 plane (ρ integrated over x2)
+            plane = result.density[mid] if g.dim == 2 else result.marginal((0, 1))[mid]
+            ax.imshow(plane.T, origin="lower", cmap="viridis",
                       extent=(g.lower[0], g.upper[0], g.lower[1], g.upper[1]))
             ax.set_xlabel("x0")
             ax.set_ylabel("x1")
