@@ -56,6 +56,15 @@ METHODS = ("optimal", "frozen")
 PROPAGATIONS = ("auto", "rational", "log")
 COUPLING_MAX_CELLS = 4096
 ROUTES = ("auto", "operator", "dense")
+# an outer residual this many times above max(first residual, 1) means the start is outside the
+# basin of the fixed point (transient rises of 100x the best residual occur in converging runs)
+DIVERGENCE_FACTOR = 10.0
+# Sinkhorn tolerance while the outer loop is far out: INNER_FRACTION x the outer residual, at
+# most INNER_CAP. Inexact sub-solves enter V through the potentials, amplified like 1/sigma^2:
+# with 1e-2 (cap 1e-4) sigma = 0.2 stagnated at residual ~3e-2; with 1e-4 (cap 1e-6) it
+# converged in 59 outer iterations, and sigma = 1 took 13 instead of 14 (n = 128..512).
+INNER_FRACTION = 1e-4
+INNER_CAP = 1e-6
 
 
 @dataclass(frozen=True)
@@ -72,13 +81,17 @@ class SolverOptions:
       and the L1 error of the initial marginal are both below it;
     * ``anderson`` (history depth, 0 = plain iteration) and ``damping`` (mixing weight in (0, 1]);
     * ``sinkhorn_tol``, ``sinkhorn_max_iter``: the entropic sub-problem's own stopping rule (its
-      tolerance is loosened to 1e-2 × the outer residual while the outer loop is far out);
+      tolerance is loosened to 1e-4 × the outer residual, at most 1e-6, while the outer loop
+      is far out);
     * ``propagation``: how time steps are applied in the sweeps: ``"rational"`` (fast; values
       below ~1e-11 of the largest are lost), ``"log"`` (exact in the log domain, any dynamic
       range, slower), or ``"auto"`` (rational, switching to log when the kernel underflows where
       an endpoint has mass or the Sinkhorn iteration stalls);
-    * ``continuation``: if the iteration fails from the start given, retry switching the
-      interaction on in this many stages (0: never);
+    * ``noise_continuation``: if the iteration fails from the start given, retry from noise
+      2^m σ, halving it stage by stage down to σ (m = this value; 0: never). Small noise makes
+      the cold start fail (the potentials are O(1/σ²)); this is the usual cure;
+    * ``continuation``: if that fails too, retry switching the interaction on in this many
+      stages (0: never);
     * ``coupling``: also return the static coupling π(x₀, x_T) (who ends where) with the operator
       route, by forming the kernel once at the end (n × n memory; at most ``COUPLING_MAX_CELLS``
       cells). The dense route always returns it.
@@ -95,6 +108,7 @@ class SolverOptions:
     dense_max_cells: int = 64
     coupling: bool = False
     continuation: int = 4
+    noise_continuation: int = 4
     propagation: str = "auto"
 
     def __post_init__(self) -> None:
@@ -116,6 +130,8 @@ class SolverOptions:
             ("coupling", isinstance(self.coupling, bool)),
             ("continuation", int(self.continuation) == self.continuation
              and self.continuation >= 0),
+            ("noise_continuation", int(self.noise_continuation) == self.noise_continuation
+             and 0 <= self.noise_continuation <= 10),
         ]
         for name, ok in checks:
             if not ok:
@@ -277,9 +293,74 @@ class _Outcome:
     ref: entropic.FrozenReference
     v_bar: np.ndarray
     residual: float
+    bridge: _Bridge
+    noise_start: float = 0.0  # first noise of a noise continuation (0: none)
 
-    def start(self) -> _Start:
-        return _Start(self.solved.p, self.v_bar, self.solved.sol.log_b)
+    @property
+    def log_domain(self) -> bool:
+        return self.bridge.log_domain
+
+    def start(self, noise: float | None = None) -> _Start:
+        """Where to start next; for another noise σ' the potentials are rescaled by
+        (σ/σ')², their leading small-noise order (log-potentials and V are O(1/σ²))."""
+        factor = 1.0 if noise is None else (self.bridge.problem.noise / noise) ** 2
+        return _Start(self.solved.p, factor * self.v_bar, factor * self.solved.sol.log_b)
+
+
+_LOG_NOTE = " (log-domain propagation: the endpoints span more than double precision)"
+
+
+def _attempt(problem: BridgeProblem, scale: float, options: SolverOptions, route: str,
+             start: _Start, history: list[dict[str, float]],
+             callback: Callable[[Iteration], None] | None, log_domain: bool = False
+             ) -> _Outcome:
+    """One outer iteration from ``start`` with the interaction ``scale`` × W; with
+    ``propagation="auto"`` it moves to log-domain steps when the rational ones underflow where an
+    endpoint has mass or the Sinkhorn iteration stalls."""
+    bridge = _Bridge(problem, scale=scale, log_domain=log_domain or options.propagation == "log")
+    outcome = None
+    try:
+        outcome = _iterate(bridge, options, route, start, history, callback)
+    except entropic.UnderflowError:
+        if options.propagation != "auto" or bridge.log_domain:
+            raise
+    if not bridge.log_domain and (outcome is None or outcome.status == "stalled"):
+        if options.propagation != "auto":
+            assert outcome is not None
+            outcome.status = "not_converged"
+            return outcome
+        warnings.warn(PrecisionWarning(
+            "the endpoints need values below double precision of the reference kernel; "
+            "switching to exact log-domain propagation (slower; set solver.propagation=log to "
+            "start there)"), stacklevel=4)
+        bridge = _Bridge(problem, scale=scale, log_domain=True)
+        start = outcome.start() if outcome is not None else start
+        outcome = _iterate(bridge, options, route, start, history, callback)
+    if outcome.status == "stalled":
+        outcome.status = "not_converged"
+    return outcome
+
+
+def _noise_continuation(problem: BridgeProblem, options: SolverOptions, route: str,
+                        history: list[dict[str, float]],
+                        callback: Callable[[Iteration], None] | None) -> _Outcome:
+    """Solve with noise σ·2^m, σ·2^(m-1), …, σ (m = ``options.noise_continuation``), each stage
+    warm-started from the previous one (ε-scaling of entropic transport: large noise is easy, and
+    as σ → 0 the flow tends to the transport interpolation, so it moves little between stages)."""
+    m = options.noise_continuation
+    noises = [problem.noise * 2.0 ** (m - j) for j in range(m + 1)]
+    stage = dataclasses.replace(problem, noise=noises[0])
+    outcome = _attempt(stage, 1.0, options, route, _cold_start(_Bridge(stage)), history,
+                       callback)
+    for noise in noises[1:]:
+        if outcome.status != "converged":
+            break
+        start = outcome.start(noise)
+        stage = problem if noise == noises[-1] else dataclasses.replace(problem, noise=noise)
+        outcome = _attempt(stage, 1.0, options, route, start, history, callback,
+                           log_domain=outcome.log_domain)
+    outcome.noise_start = noises[0]
+    return outcome
 
 
 def _cold_start(bridge: _Bridge) -> _Start:
@@ -302,8 +383,8 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
             f"the static coupling of {grid.size} cells needs an n x n kernel; it is available up "
             f"to {COUPLING_MAX_CELLS} cells (use route=operator without coupling)"
         )
-    log_domain = options.propagation == "log"
-    bridge = _Bridge(problem, log_domain=log_domain)
+    bridge = _Bridge(problem)
+    interacting = not bridge.pair.is_zero
     if warm_start is None:
         start = _cold_start(bridge)
     else:
@@ -313,35 +394,23 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
                        else np.zeros_like(warm_start.correction),
                        np.nan_to_num(warm_start.log_backward[-1], nan=0.0, neginf=-745.0))
     history: list[dict[str, float]] = []
-    note = ""
-    try:
-        outcome = _iterate(bridge, options, route, start, history, callback)
-    except entropic.UnderflowError:
-        if options.propagation != "auto":
-            raise
-        outcome = None
-    if options.propagation == "auto" and (outcome is None or outcome.status == "stalled"):
-        # the rational steps lost cells the endpoints need: redo exactly in the log domain
-        warnings.warn(PrecisionWarning(
-            "the endpoints need values below double precision of the reference kernel; "
-            "switching to exact log-domain propagation (slower; set solver.propagation=log to "
-            "start there)"), stacklevel=3)
-        bridge = _Bridge(problem, log_domain=True)
-        start = outcome.start() if outcome is not None else start
-        outcome = _iterate(bridge, options, route, start, history, callback)
-        note = " (log-domain propagation: the endpoints span more than double precision)"
-    if outcome.status == "stalled":
-        outcome.status = "not_converged"
-    if outcome.status != "converged" and options.continuation > 0 and not bridge.pair.is_zero:
+    outcome = _attempt(problem, 1.0, options, route, start, history, callback)
+    note = _LOG_NOTE if outcome.log_domain else ""
+    if outcome.status != "converged" and options.noise_continuation > 0:
+        outcome = _noise_continuation(problem, options, route, history, callback)
+        note = (f" (by continuation in the noise from {outcome.noise_start:.3g} over "
+                f"{options.noise_continuation} stages)")
+    if outcome.status != "converged" and options.continuation > 0 and interacting:
         m = options.continuation
         start = _cold_start(bridge)
         for j in range(1, m + 1):
-            stage = _Bridge(problem, scale=j / m, log_domain=bridge.log_domain)
-            outcome = _iterate(stage, options, route, start, history, callback)
+            outcome = _attempt(problem, j / m, options, route, start, history, callback,
+                               log_domain=outcome.log_domain)
             if outcome.status != "converged":
                 break
             start = outcome.start()
-        note += f" (by continuation in the interaction strength over {m} stages)"
+        note = f" (by continuation in the interaction strength over {m} stages)"
+    bridge = outcome.bridge
     solved, ref = outcome.solved, outcome.ref
     if options.coupling and solved.sol.coupling is None:
         sol = solved.sol
@@ -378,6 +447,7 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
     mixer = AndersonMixer(options.anderson, options.damping)
     inner_tol = options.sinkhorn_tol if not interacting else max(options.sinkhorn_tol, 1e-4)
     status, residual, solved, ref = "not_converged", np.inf, None, None
+    first: float | None = None
     for _ in range(options.max_iter):
         t0 = time.perf_counter()
         ref = bridge.reference(p_bar, v_bar)
@@ -396,7 +466,9 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
         if callback is not None:
             callback(Iteration(len(history), residual, sol.marginal_error, sol.iterations,
                                seconds))
-        if not np.isfinite(residual) or not np.isfinite(sol.marginal_error):
+        first = residual if first is None else first
+        if (not np.isfinite(residual) or not np.isfinite(sol.marginal_error)
+                or residual > DIVERGENCE_FACTOR * max(first, 1.0)):
             status = "diverged"
             break
         if (sol.iterations >= options.sinkhorn_max_iter and sol.marginal_error > inner_tol
@@ -411,7 +483,7 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
                 inner_tol = options.sinkhorn_tol
                 continue
             break
-        inner_tol = max(options.sinkhorn_tol, min(1e-4, 1e-2 * residual))
+        inner_tol = max(options.sinkhorn_tol, min(INNER_CAP, INNER_FRACTION * residual))
         if optimal:
             x = np.concatenate([p_bar.ravel(), v_bar.ravel()])
             gx = np.concatenate([solved.p.ravel(), v_new.ravel()])
@@ -422,7 +494,7 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
         if optimal:
             v_bar = x_next[p_bar.size :].reshape(v_bar.shape)
     assert solved is not None and ref is not None
-    return _Outcome(status, solved, ref, v_bar, residual)
+    return _Outcome(status, solved, ref, v_bar, residual, bridge)
 
 
 def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: np.ndarray,
