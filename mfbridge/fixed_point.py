@@ -48,7 +48,7 @@ from mfbridge import entropic, observables
 from mfbridge.anderson import AndersonMixer
 from mfbridge.errors import ConvergenceWarning, InputError, PrecisionWarning, unknown_name
 from mfbridge.problem import BridgeProblem
-from mfbridge.propagator import StepOperator
+from mfbridge.propagator import UNIFORMISATION_TAIL, StepOperator, step_tail
 from mfbridge.reference import EdgeRates, PairField, bernoulli_derivative, edge_rates, faces
 from mfbridge.result import BridgeResult
 
@@ -177,7 +177,8 @@ class _Bridge:
     def potential(self, p: np.ndarray) -> np.ndarray:
         return self.confinement + self.scale * self.pair(p)
 
-    def reference(self, p_bar: np.ndarray, v_bar: np.ndarray) -> entropic.FrozenReference:
+    def reference(self, p_bar: np.ndarray, v_bar: np.ndarray,
+                  tail: float = UNIFORMISATION_TAIL) -> entropic.FrozenReference:
         phi = self.potential(p_bar)
         phi_mid = 0.5 * (phi[:-1] + phi[1:])
         rates = edge_rates(phi_mid, self.grid, self.problem.noise)
@@ -186,7 +187,7 @@ class _Bridge:
             rk = EdgeRates(tuple(r[k] for r in rates.forward),
                            tuple(r[k] for r in rates.backward))
             # in 2D/3D alternate the order of the axis factors (Strang over pairs of steps)
-            steps.append(StepOperator(rk, self.dt, self.shape, reverse=bool(k % 2)))
+            steps.append(StepOperator(rk, self.dt, self.shape, reverse=bool(k % 2), tail=tail))
         return entropic.FrozenReference(steps, -self.expand(self.omega) * v_bar, self.log_domain)
 
     def solved(self, sol: entropic.EntropicSolution, ref: entropic.FrozenReference,
@@ -380,7 +381,7 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
     status, residual, solved, ref = "not_converged", np.inf, None, None
     for _ in range(options.max_iter):
         t0 = time.perf_counter()
-        ref = bridge.reference(p_bar, v_bar)
+        ref = bridge.reference(p_bar, v_bar, step_tail(inner_tol, bridge.k_steps))
         sol = inner(ref, mu, nu, log_b, tol=inner_tol, max_iter=options.sinkhorn_max_iter)
         log_b = sol.log_b
         solved = bridge.solved(sol, ref, v_bar)
