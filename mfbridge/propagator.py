@@ -87,9 +87,12 @@ def _uniformisation_is_cheaper(terms: int, cells: int) -> bool:
 def poisson_terms(lam: float, tail: float) -> int:
     """Smallest m with P(Poisson(λ) > m) ≤ ``tail``: the terms kept by uniformisation."""
     m = int(lam)
-    while special.pdtrc(m, lam) > tail:
-        m += 1
-    return m
+    while True:  # one vectorised call covers every realistic case
+        span = np.arange(m, m + int(10 * math.sqrt(lam)) + 64)
+        below = np.flatnonzero(special.pdtrc(span, lam) <= tail)
+        if below.size:
+            return int(span[below[0]])
+        m = int(span[-1]) + 1
 
 
 def _poisson_weights(lam: float, terms: int) -> np.ndarray:
@@ -149,7 +152,7 @@ class AxisStep:
         self._terms = poisson_terms(self._lam, tail)
         self.uniformised = method == "uniformisation" or (
             method == "auto" and _uniformisation_is_cheaper(self._terms, upp.size))
-        self._uniform: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+        self._uniform: tuple[np.ndarray, ...] | None = None
 
     def _factorise(self) -> list[np.ndarray]:
         if self._lu is None:
@@ -190,9 +193,9 @@ class AxisStep:
         2-norm of :func:`scalar_exp`'s bound.
         """
         # the axis first and contiguous: the shifted slices below are then contiguous blocks
-        front = np.ascontiguousarray(np.moveaxis(values, self.axis, 0))
+        front = np.ascontiguousarray(np.moveaxis(values, self.axis, 0) if self.axis else values)
         n, batch = front.shape[0], front.shape[-1]
-        stay, up, down = self._uniform_coefficients()
+        stay, up, down, weights = self._uniform_coefficients()
         if batch == 1:
             term = front.reshape(n, -1)
         else:
@@ -200,7 +203,6 @@ class AxisStep:
             stay, up, down = stay[..., None], up[..., None], down[..., None]
         right, left = (down, up) if transpose else (up, down)
         # (P v)_i = P_ii v_i + P_{i,i+1} v_{i+1} + P_{i,i-1} v_{i-1}; P^T swaps the neighbours
-        weights = _poisson_weights(self._lam, self._terms)
         total = weights[0] * term
         for w in weights[1:]:
             nxt = stay * term
@@ -208,15 +210,18 @@ class AxisStep:
             nxt[1:] += left * term[:-1]
             term = nxt
             total += w * term
-        return np.moveaxis(total.reshape(front.shape), 0, self.axis)
+        total = total.reshape(front.shape)
+        return np.moveaxis(total, 0, self.axis) if self.axis else total
 
-    def _uniform_coefficients(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """P_ii (n, lines), P_{i,i+1} and P_{i+1,i} (n - 1, lines) of P = I + τQ_a/Λ."""
+    def _uniform_coefficients(self) -> tuple[np.ndarray, ...]:
+        """P_ii (n, lines), P_{i,i+1} and P_{i+1,i} (n - 1, lines) of P = I + τQ_a/Λ, and the
+        Poisson weights of the kept terms."""
         if self._uniform is None:
-            lam = self._lam
+            lam = max(self._lam, 1e-300)
             self._uniform = (np.ascontiguousarray((1.0 - self._exit / lam).T),
                              np.ascontiguousarray(self._tau_up[:, :-1].T / lam),
-                             np.ascontiguousarray(self._tau_down[:, :-1].T / lam))
+                             np.ascontiguousarray(self._tau_down[:, :-1].T / lam),
+                             _poisson_weights(self._lam, self._terms))
         return self._uniform
 
     def log_apply(self, log_values: np.ndarray, transpose: bool) -> np.ndarray:
