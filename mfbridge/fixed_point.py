@@ -377,7 +377,7 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
     optimal = options.method == "optimal" and interacting
     p_bar, v_bar, log_b = start.p_bar, start.v_bar, start.log_b
     mixer = AndersonMixer(options.anderson, options.damping)
-    inner_tol = options.sinkhorn_tol if not interacting else max(options.sinkhorn_tol, 1e-4)
+    inner_tol = options.sinkhorn_tol if not interacting else max(options.sinkhorn_tol, 1e-3)
     status, residual, solved, ref = "not_converged", np.inf, None, None
     for _ in range(options.max_iter):
         t0 = time.perf_counter()
@@ -412,7 +412,7 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
                 inner_tol = options.sinkhorn_tol
                 continue
             break
-        inner_tol = max(options.sinkhorn_tol, min(1e-4, 1e-2 * residual))
+        inner_tol = max(options.sinkhorn_tol, min(1e-3, 1e-2 * residual))
         if optimal:
             x = np.concatenate([p_bar.ravel(), v_bar.ravel()])
             gx = np.concatenate([solved.p.ravel(), v_new.ravel()])
