@@ -200,3 +200,25 @@ def test_uniformisation_error_is_below_its_requested_tail(tail):
     op = StepOperator(rates, tau, grid.shape, method="uniformisation", tail=tail)
     err = weighted_error(op.apply(np.eye(grid.size)), exact, gibbs(phi, 1.0))
     assert tail / 100 < err < tail + 1e-14
+
+
+@pytest.mark.parametrize("method", ["contour", "uniformisation"])
+@pytest.mark.parametrize("reverse", [None, True])
+def test_step_operator_is_exact_for_a_separable_3d_potential(method, reverse):
+    # As in 2D: commuting axis generators make both splittings exact (Strang: 5 factors,
+    # one-sided: 3). Measured weighted errors: contour 1.75e-11 / 1.05e-11, uniformisation
+    # 3.1e-14 / 6.4e-15, against bounds of 1.76e-11 / 1.06e-11 and 1.5e-13 / 1.3e-13.
+    grid = Grid([-3.0, -2.0, -2.5], [3.0, 2.0, 2.5], [7, 6, 5])
+    x, y, z = grid.points[..., 0], grid.points[..., 1], grid.points[..., 2]
+    phi = 0.5 * x**2 + 0.2 * y**4 - y + np.cos(z)
+    rates = edge_rates(phi, grid, 0.8)
+    tau = 0.05
+    exact = scipy.linalg.expm(tau * dense_generator(rates, grid.shape))
+    op = StepOperator(rates, tau, grid.shape, reverse=reverse, method=method)
+    eye = np.eye(grid.size).reshape(*grid.shape, grid.size)
+    approx = op.apply(eye).reshape(grid.size, grid.size)
+    approx_t = op.apply_transpose(eye).reshape(grid.size, grid.size).T
+    bound = step_error_bound(method, 5 if reverse is None else 3)
+    pi = gibbs(phi, 0.8)
+    assert weighted_error(approx, exact, pi) < bound
+    assert weighted_error(approx_t, exact, pi) < bound
