@@ -77,10 +77,9 @@ class EntropicSolution:
 
 def _log_apply(apply, log_v: np.ndarray) -> np.ndarray:
     """``log(apply(exp(log_v)))`` with a shift so the largest entry is exp(0)."""
-    finite = np.isfinite(log_v)
-    if not finite.any():
+    shift = log_v.max()
+    if shift == -np.inf:
         return np.full_like(log_v, -np.inf)
-    shift = log_v[finite].max()
     out = apply(np.exp(log_v - shift))
     # The rational step operator is exact to ~1e-11 relative to the largest entry; below that a
     # value is noise and may come out negative: it is zero to working accuracy. When such values
@@ -88,7 +87,9 @@ def _log_apply(apply, log_v: np.ndarray) -> np.ndarray:
     # and the solver switches to the exact log-domain steps.
     np.maximum(out, 0.0, out=out)
     with np.errstate(divide="ignore"):
-        return shift + np.log(out)
+        np.log(out, out=out)
+    out += shift
+    return out
 
 
 def backward_sweep(ref: FrozenReference, log_b: np.ndarray) -> np.ndarray:
