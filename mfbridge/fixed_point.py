@@ -59,6 +59,9 @@ ROUTES = ("auto", "operator", "dense")
 # an outer residual this many times above max(first residual, 1) means the start is outside the
 # basin of the fixed point (transient rises of 100x the best residual occur in converging runs)
 DIVERGENCE_FACTOR = 10.0
+# above this cell Péclet number a failure message suggests refining the grid (common practice,
+# no source: finite-volume drift-diffusion schemes resolve layers only for |v|h/D <~ 2)
+PECLET_HINT = 2.0
 # Sinkhorn tolerance while the outer loop is far out: INNER_FRACTION x the outer residual (at
 # most 10 x INNER_FRACTION), 100x tighter after STAGNATION iterations without a new best
 # residual, down to INNER_FRACTION_MIN. Inexact sub-solves enter V through the potentials,
@@ -328,7 +331,8 @@ def _attempt(problem: BridgeProblem, scale: float, options: SolverOptions, route
     except entropic.UnderflowError:
         if options.propagation != "auto" or bridge.log_domain:
             raise
-    if not bridge.log_domain and (outcome is None or outcome.status == "stalled"):
+    lost = outcome is None or outcome.status == "stalled" or not np.isfinite(outcome.residual)
+    if not bridge.log_domain and lost:
         if options.propagation != "auto":
             assert outcome is not None
             outcome.status = "not_converged"
@@ -430,6 +434,11 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
         message = (f"{status.replace('_', ' ')} after {it} outer iterations{note}: last residual "
                    f"{residual:.2e} (tolerance {options.tol:.1e}), marginal error "
                    f"{solved.sol.marginal_error:.2e}")
+        peclet = _cell_peclet(bridge, solved)
+        if peclet > PECLET_HINT:
+            message += (f"; the largest cell Péclet number is {peclet:.3g}: the grid is coarse "
+                        f"for this noise (the outer iteration needs |u|h/D of order 1 or below); "
+                        f"refine the grid")
         warnings.warn(ConvergenceWarning(message), stacklevel=3)
     solve_seconds = float(sum(h["seconds"] for h in history))
     return _result(bridge, solved, ref, outcome.v_bar, options, route, status, message,
@@ -583,6 +592,26 @@ def _net_fluxes(bridge: _Bridge, s: _Solved
                            - bwd * np.exp(s.log_f[hi_t] + s.log_h[lo_t]))
         reference_flux.append(fwd * s.p[lo_t] - bwd * s.p[hi_t])
     return tuple(bridge_flux), tuple(reference_flux)
+
+
+def _cell_peclet(bridge: _Bridge, s: _Solved) -> float:
+    """Largest cell Péclet number |v| h / D (D = σ²/2) over faces and times, for the reference
+    drift (βΔΦ across a face) and for the control (u = σ²∇ψ gives 2Δψ across a face)."""
+    beta = 2.0 / bridge.problem.noise**2
+    largest = 0.0
+    for a in range(bridge.grid.dim):
+        ax = 1 + a
+        with np.errstate(invalid="ignore"):
+            drift = np.abs(beta * np.diff(s.phi, axis=ax))
+            control = np.abs(2 * np.diff(s.log_h, axis=ax))
+        mass = (s.p > 1e-12 * s.p.max())
+        lo, hi = faces(s.p.ndim, ax, bridge.shape[a])
+        occupied = mass[lo] | mass[hi]
+        for v in (drift, control):
+            v = v[occupied & np.isfinite(v)]
+            if v.size:
+                largest = max(largest, float(v.max()))
+    return largest
 
 
 def _describe(obj: object) -> dict[str, object]:

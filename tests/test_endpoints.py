@@ -276,7 +276,7 @@ def test_describe_and_repr() -> None:
 
 
 def _grid_for(dim: int) -> Grid:
-    name = {1: "line", 2: "plane"}[dim]
+    name = {1: "line", 2: "plane", 3: "cube"}[dim]
     with initialize_config_dir(config_dir=str(CONF), version_base="1.3"):
         return instantiate(compose(config_name=f"grid/{name}").grid)
 

@@ -9,7 +9,7 @@ import pytest
 from mfbridge import observables
 from mfbridge.endpoints import Gaussian
 from mfbridge.entropic import UnderflowError
-from mfbridge.errors import PrecisionWarning
+from mfbridge.errors import ConvergenceWarning, PrecisionWarning
 from mfbridge.fixed_point import SolverOptions, solve_bridge
 from mfbridge.grid import Grid
 from mfbridge.potentials import DoubleWell, Harmonic, HarmonicInteraction
@@ -131,3 +131,15 @@ def test_strong_attraction_long_horizon_cost_is_the_free_energy_gap():
     result = solve_bridge(double_well_problem(rho_eq, nu, horizon=4.0, steps=200))
     assert result.converged, result.message
     assert abs(result.cost - limit) / limit < 1e-3
+
+
+def test_failure_at_small_noise_on_a_coarse_grid_says_to_refine():
+    # sigma = 0.1 with h = 1/8: the transport needs a cell Péclet number |u|h/D in the hundreds;
+    # without the continuations the iteration fails, and the message must say why
+    problem = BridgeProblem(grid=Grid(-4.0, 4.0, 64), initial=Gaussian(-1.0, 0.16),
+                            final=Gaussian(1.2, 0.49), noise=0.1, horizon=1.0, steps=10,
+                            confinement=Harmonic(1.0), interaction=HarmonicInteraction(1.5))
+    with pytest.warns(ConvergenceWarning, match="Péclet"):
+        result = solve_bridge(problem, SolverOptions(noise_continuation=0, continuation=0))
+    assert not result.converged
+    assert "refine the grid" in result.message
