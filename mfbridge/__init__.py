@@ -11,7 +11,13 @@ Importing the package imports neither Hydra nor matplotlib.
 
 from mfbridge.api import build_problem, compose, solve
 from mfbridge.endpoints import Gaussian, GaussianMixture, UniformBox
-from mfbridge.errors import ConvergenceWarning, InputError, MFBridgeError, PrecisionWarning
+from mfbridge.errors import (
+    ConvergenceWarning,
+    InputError,
+    MFBridgeError,
+    MultipleBridgesWarning,
+    PrecisionWarning,
+)
 from mfbridge.fixed_point import Iteration, SolverOptions, solve_bridge
 from mfbridge.grid import Grid
 from mfbridge.linear_quadratic import LQBridge, lq_bridge
@@ -32,6 +38,7 @@ __all__ = [
     "Iteration",
     "LQBridge",
     "MFBridgeError",
+    "MultipleBridgesWarning",
     "PrecisionWarning",
     "SolverOptions",
     "UniformBox",

@@ -36,6 +36,8 @@ from dataclasses import asdict
 from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from mfbridge import records
 from mfbridge.api import CONF_DIR, solve
 from mfbridge.errors import InputError, MFBridgeError
@@ -178,6 +180,11 @@ def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None
                 log.info("cost J = %.8g  (kinetic %.6g, drift %.6g, free-energy change %.6g)",
                          result.cost, result.cost_kinetic, result.cost_drift,
                          result.cost_free_energy)
+                for alt in result.alternatives:
+                    log.warning("another bridge (start %s, %s): cost J = %.8g, max L1 distance "
+                                "%.3g to the returned one, mean at T/2 %s", alt.start,
+                                alt.status.replace("_", " "), alt.cost, alt.distance,
+                                np.array2string(alt.mean[len(alt.mean) // 2], precision=4))
                 if cfg.get("figures", True):
                     from mfbridge.plotting import plot_result
 

@@ -23,6 +23,11 @@ class PrecisionWarning(UserWarning):
     """The fast route lost precision and the solver switched to a slower exact one."""
 
 
+class MultipleBridgesWarning(UserWarning):
+    """A multi-start solve found several different bridges (critical points of the rate
+    function); the cheapest is returned and the others are kept in ``result.alternatives``."""
+
+
 def unknown_name(kind: str, name: str, valid: list[str] | tuple[str, ...]) -> InputError:
     """Error for an unknown option name, listing the valid ones."""
     return InputError(f"unknown {kind} {name!r}; valid names are: {', '.join(sorted(valid))}")

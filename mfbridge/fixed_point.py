@@ -44,7 +44,7 @@ from dataclasses import dataclass
 import numpy as np
 from threadpoolctl import threadpool_limits
 
-from mfbridge import entropic, observables
+from mfbridge import entropic, multistart, observables
 from mfbridge.anderson import AndersonMixer
 from mfbridge.errors import ConvergenceWarning, InputError, PrecisionWarning, unknown_name
 from mfbridge.problem import BridgeProblem
@@ -71,6 +71,7 @@ PECLET_HINT = 2.0
 INNER_FRACTION = 1e-2
 INNER_FRACTION_MIN = 1e-6
 STAGNATION = 4
+MAX_STARTS = 64
 
 
 @dataclass(frozen=True)
@@ -100,7 +101,11 @@ class SolverOptions:
       stages (0: never);
     * ``coupling``: also return the static coupling π(x₀, x_T) (who ends where) with the operator
       route, by forming the kernel once at the end (n × n memory; at most ``COUPLING_MAX_CELLS``
-      cells). The dense route always returns it.
+      cells). The dense route always returns it;
+    * ``starts``: run the outer loop from this many initial guesses, the usual one and
+      ``starts - 1`` tilted ones (:mod:`mfbridge.multistart`); the cheapest converged bridge is
+      returned, the other distinct ones are in ``result.alternatives`` and a
+      :class:`~mfbridge.errors.MultipleBridgesWarning` names their costs (1: one start).
     """
 
     method: str = "optimal"
@@ -116,6 +121,7 @@ class SolverOptions:
     continuation: int = 4
     noise_continuation: int = 4
     propagation: str = "auto"
+    starts: int = 1
 
     def __post_init__(self) -> None:
         if self.method not in METHODS:
@@ -138,6 +144,8 @@ class SolverOptions:
              and self.continuation >= 0),
             ("noise_continuation", int(self.noise_continuation) == self.noise_continuation
              and 0 <= self.noise_continuation <= 10),
+            ("starts", isinstance(self.starts, int) and not isinstance(self.starts, bool)
+             and 1 <= self.starts <= MAX_STARTS),
         ]
         for name, ok in checks:
             if not ok:
@@ -441,9 +449,14 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
                         f"refine the grid")
         warnings.warn(ConvergenceWarning(message), stacklevel=3)
     solve_seconds = float(sum(h["seconds"] for h in history))
-    return _result(bridge, solved, ref, outcome.v_bar, options, route, status, message,
-                   it, residual, history,
-                   {"solve": solve_seconds, "total": time.perf_counter() - start_time})
+    result = _result(bridge, solved, ref, outcome.v_bar, options, route, status, message,
+                     it, residual, history,
+                     {"solve": solve_seconds, "total": time.perf_counter() - start_time})
+    if options.starts > 1:
+        result.start = "cold" if warm_start is None else "warm"
+        result = _other_starts(problem, options, route, result, callback)
+        result.timings["total"] = time.perf_counter() - start_time
+    return result
 
 
 def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
@@ -617,3 +630,29 @@ def _cell_peclet(bridge: _Bridge, s: _Solved) -> float:
 def _describe(obj: object) -> dict[str, object]:
     describe = getattr(obj, "describe", None)
     return describe() if callable(describe) else {"repr": repr(obj)}
+
+
+def _other_starts(problem: BridgeProblem, options: SolverOptions, route: str,
+                  first: BridgeResult, callback: Callable[[Iteration], None] | None
+                  ) -> BridgeResult:
+    """Run the outer loop from ``options.starts - 1`` tilted guesses (no continuation: a guess
+    that fails is reported as such) and return :func:`mfbridge.multistart.gather` of all."""
+    found = [first]
+    for label, p_bar in multistart.tilted_flows(problem, options.starts - 1):
+        history: list[dict[str, float]] = []
+        start = _Start(p_bar, np.zeros_like(p_bar), np.zeros(problem.grid.shape))
+        try:
+            outcome = _attempt(problem, 1.0, options, route, start, history, callback)
+        except entropic.UnderflowError:
+            continue
+        it, res = len(history), outcome.residual
+        message = (f"{outcome.status.replace('_', ' ')} in {it} outer iterations from start "
+                   f"{label}: residual {res:.2e}, marginal error "
+                   f"{outcome.solved.sol.marginal_error:.2e}")
+        seconds = float(sum(h["seconds"] for h in history))
+        result = _result(outcome.bridge, outcome.solved, outcome.ref, outcome.v_bar, options,
+                         route, outcome.status, message, it, res, history,
+                         {"solve": seconds, "total": seconds})
+        result.start = label
+        found.append(result)
+    return multistart.gather(found, options.tol)

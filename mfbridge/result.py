@@ -35,6 +35,32 @@ SUMMARY_FILE = "summary.json"
 
 
 @dataclass
+class Alternative:
+    r"""Another bridge of the same problem, found from another start of the solver.
+
+    ``start``: label of the initial guess (``"cold"``, ``"warm"``, ``"tilt+x0"``...);
+    ``cost``: its J; ``status`` and ``residual``: of its outer iteration; ``distance``:
+    :math:`\max_t \sum_i |p_{t,i} - p'_{t,i}|`, the largest L1 distance between its cell masses
+    and those of the returned bridge; ``mean``: its mean path (K+1, d); ``density``: its
+    :math:`\rho_t` (K+1, *grid.shape), or ``None`` if not kept.
+    """
+
+    start: str
+    cost: float
+    status: str
+    residual: float
+    distance: float
+    mean: np.ndarray
+    density: np.ndarray | None = None
+
+    def summary(self) -> dict[str, Any]:
+        """The record written into ``summary.json`` (every field but the density)."""
+        return {"start": self.start, "cost": self.cost, "status": self.status,
+                "residual": self.residual, "distance": self.distance,
+                "mean": np.asarray(self.mean).tolist()}
+
+
+@dataclass
 class BridgeResult:
     r"""The mean-field Schrödinger bridge on a grid.
 
@@ -80,6 +106,10 @@ class BridgeResult:
     model: dict[str, Any] = field(default_factory=dict)
     config: dict[str, Any] | None = None
     coupling: np.ndarray | None = None
+    # other bridges found by a multi-start solve (solver option ``starts``), cheapest first
+    alternatives: list[Alternative] = field(default_factory=list)
+    # label of the initial guess this bridge came from ("" when not a multi-start solve)
+    start: str = ""
 
     @property
     def converged(self) -> bool:
@@ -135,6 +165,8 @@ class BridgeResult:
             "units": UNITS,
             "interpretation": INTERPRETATION,
             "timings": self.timings,
+            "start": self.start,
+            "alternatives": [a.summary() for a in self.alternatives],
         }
 
     def _noise_input(self) -> str:
@@ -171,6 +203,13 @@ class BridgeResult:
         }
         if self.coupling is not None:
             data["coupling"] = (["cell_0", "cell_T"], self.coupling, {})
+        kept = [a.density for a in self.alternatives if a.density is not None]
+        if kept and len(kept) == len(self.alternatives):
+            coords["bridge"] = np.arange(1, len(kept) + 1)
+            data["alternative_density"] = (["bridge", *field_dims], np.stack(kept),
+                                           {"units": "1/length^d",
+                                            "meaning": "other bridges, in the order of "
+                                                       "summary alternatives"})
         hist_keys = sorted({k for row in self.history for k in row})
         if self.history:
             coords["iteration"] = np.arange(1, len(self.history) + 1)
@@ -262,6 +301,14 @@ def _from_dataset(ds: Any, summary: dict[str, Any]) -> BridgeResult:
         for i in range(ds.sizes["iteration"]):
             history.append({k[len("history_"):]: float(ds[k].values[i]) for k in hist_vars})
     config = json.loads(ds.attrs.get("config", "null"))
+    # results written before multi-start solves have neither entry
+    densities = ds["alternative_density"].values if "alternative_density" in ds else None
+    alternatives = [
+        Alternative(start=a["start"], cost=a["cost"], status=a["status"],
+                    residual=a["residual"], distance=a["distance"], mean=np.asarray(a["mean"]),
+                    density=None if densities is None else densities[i])
+        for i, a in enumerate(summary.get("alternatives", []))
+    ]
     return BridgeResult(
         grid=grid,
         times=ds["t"].values,
@@ -291,4 +338,6 @@ def _from_dataset(ds: Any, summary: dict[str, Any]) -> BridgeResult:
         model=summary["model"],
         config=config,
         coupling=ds["coupling"].values if "coupling" in ds else None,
+        alternatives=alternatives,
+        start=summary.get("start", ""),
     )

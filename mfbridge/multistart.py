@@ -1,0 +1,140 @@
+r"""Several initial guesses for the outer loop, and which of the bridges they reach to return.
+
+With a strong attraction and a non-convex confinement the rate function J can have several
+critical points, and the outer fixed-point loop (:mod:`mfbridge.fixed_point`) converges to the
+one whose basin holds its start. Solver option ``starts = m`` runs the usual start (cold or warm)
+and ``m - 1`` *tilted* guesses, and reports every distinct converged bridge.
+
+Tilted guesses
+--------------
+The cold start is the linear interpolation of the endpoint masses,
+:math:`\bar p_s = (1-s)\mu + s\nu`, :math:`s = t/T`. A tilted guess reweights it along one grid
+axis :math:`a`,
+
+.. math::
+
+    \bar p_s(x) \propto \bigl((1-s)\mu + s\nu\bigr)(x)\,
+                        \exp\bigl(\pm\lambda\,(x_a - c_a)\,4s(1-s)\bigr),
+    \qquad \lambda = \frac{2\,j}{\varsigma_a},
+
+normalised at every time: the endpoints are unchanged and the bias is largest at :math:`T/2`.
+:math:`c_a` is the centre of the grid box, :math:`\varsigma_a` the larger of the two endpoint
+standard deviations along the axis, and :math:`j = 1, 2, \dots` the level; a Gaussian tilted by
+:math:`e^{\lambda x}` moves its mean by :math:`\lambda\varsigma^2`, so level j moves the guess by
+about :math:`2j` endpoint widths at :math:`T/2` whatever the length unit. Guesses go through the
+axes in decreasing order of :math:`\varsigma_a` (ties: lower axis first), each with both signs,
+then the next level: in 1D ``starts = 3`` is the cold start and the two tilts of level 1.
+A reweighting never puts mass where the interpolation has none; the outer loop moves it.
+
+Distinct bridges
+----------------
+Two converged flows are the same bridge when
+:math:`\max_k \sum_i |p_{k,i} - p'_{k,i}| \le \max(10^{-3}, 10^{3}\,\mathrm{tol})`: runs of the
+outer loop that reach the same fixed point from different starts differ by an amount of the order
+of the residual tolerance (measured: at most 1.1e-10 with tol = 1e-9), while different critical
+points of J differ at order one (the mirror-image bridges of the swarm passing an obstacle on
+either side, tests/test_multistart.py, are disjoint: distance 2).
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+
+from mfbridge.errors import MultipleBridgesWarning
+from mfbridge.problem import BridgeProblem
+from mfbridge.result import Alternative, BridgeResult
+
+# Flows closer than this (max over time of the L1 distance of the masses) are one bridge; with
+# tol = 1e-9 the same fixed point reached from the cold start and from tilted guesses differed by
+# at most 1.1e-10 (LQ case of tests/test_multistart.py, 64 cells, 10 steps), far below.
+SAME_BRIDGE_L1 = 1e-3
+# the threshold grows with a looser outer tolerance: 1e3 x tol
+SAME_BRIDGE_TOL_FACTOR = 1e3
+TILT = 2.0  # endpoint widths the level-1 guess moves at T/2
+
+
+def same_bridge_threshold(tol: float) -> float:
+    """L1 distance below which two converged flows are counted as one bridge."""
+    return max(SAME_BRIDGE_L1, SAME_BRIDGE_TOL_FACTOR * tol)
+
+
+def flow_distance(p: np.ndarray, q: np.ndarray) -> float:
+    """:math:`\\max_k \\sum_i |p_{k,i} - q_{k,i}|` for masses of shape (K+1, *grid.shape)."""
+    return float(np.abs(p - q).reshape(p.shape[0], -1).sum(axis=1).max())
+
+
+def _spreads(problem: BridgeProblem) -> np.ndarray:
+    """The larger of the two endpoint standard deviations along each axis, shape (d,)."""
+    grid = problem.grid
+    out = np.zeros(grid.dim)
+    for a in range(grid.dim):
+        x = grid.points[..., a]
+        for m in (problem.initial, problem.final):
+            mean = float((m * x).sum())
+            out[a] = max(out[a], float(np.sqrt(max((m * (x - mean) ** 2).sum(), 0.0))))
+    # a point mass: use one cell, so the tilt stays finite
+    return np.maximum(out, np.asarray(grid.spacing))
+
+
+def tilted_flows(problem: BridgeProblem, count: int) -> list[tuple[str, np.ndarray]]:
+    """``count`` tilted guesses (label, masses of shape (K+1, *grid.shape)), as described in
+    the module docstring."""
+    grid = problem.grid
+    spreads = _spreads(problem)
+    # spreads equal to rounding (isotropic endpoints) count as ties
+    rounded = np.round(spreads / spreads.max(), 9)
+    order = sorted(range(grid.dim), key=lambda a: (-rounded[a], a))
+    s = (problem.times / problem.horizon).reshape(-1, *([1] * grid.dim))
+    base = (1 - s) * problem.initial + s * problem.final
+    bump = 4 * s * (1 - s)
+    out = []
+    for i in range(count):
+        level, rest = divmod(i, 2 * grid.dim)
+        axis, sign = order[rest // 2], (1.0, -1.0)[rest % 2]
+        lam = TILT * (level + 1) / spreads[axis]
+        centre = 0.5 * (grid.lower[axis] + grid.upper[axis])
+        log_w = sign * lam * (grid.points[..., axis] - centre) * bump
+        log_w -= log_w.reshape(log_w.shape[0], -1).max(axis=1).reshape(s.shape)
+        p = base * np.exp(log_w)
+        p /= p.reshape(p.shape[0], -1).sum(axis=1).reshape(s.shape)
+        name = f"tilt{'' if level == 0 else level + 1}{'+' if sign > 0 else '-'}x{axis}"
+        out.append((name, p))
+    return out
+
+
+def gather(found: list[BridgeResult], tol: float) -> BridgeResult:
+    """The cheapest converged bridge among ``found`` (one result per start, the first the usual
+    start), carrying the other distinct converged bridges as ``alternatives``, cheapest first.
+
+    If none converged the first is returned unchanged. A :class:`MultipleBridgesWarning`
+    names the costs when more than one distinct bridge is found.
+    """
+    converged = sorted((r for r in found if r.converged), key=lambda r: r.cost)
+    if not converged:
+        return found[0]
+    limit = same_bridge_threshold(tol)
+    kept: list[BridgeResult] = []
+    for r in converged:
+        if all(flow_distance(r.masses, k.masses) > limit for k in kept):
+            kept.append(r)
+    best, others = kept[0], kept[1:]
+    best.alternatives = [
+        Alternative(start=r.start, cost=r.cost, status=r.status, residual=r.residual,
+                    distance=flow_distance(r.masses, best.masses), mean=r.mean,
+                    density=r.density)
+        for r in others
+    ]
+    tried = ", ".join(f"{r.start}: {r.status.replace('_', ' ')}" for r in found)
+    best.message += f" [{len(found)} starts ({tried}); {len(kept)} distinct bridge(s)]"
+    if others:
+        costs = "; ".join(f"J = {r.cost:.8g} from start {r.start}"
+                          f" (max L1 distance {flow_distance(r.masses, best.masses):.3g})"
+                          for r in others)
+        warnings.warn(MultipleBridgesWarning(
+            f"{len(kept)} different bridges solve this problem: returned the cheapest, "
+            f"J = {best.cost:.8g} from start {best.start}; the others: {costs}. They are "
+            f"critical points of J (the lowest found is not proven global); see "
+            f"result.alternatives"), stacklevel=4)
+    return best
