@@ -231,10 +231,13 @@ def solve_dense(
         log_nu = np.log(nu.ravel())
     log_b_start = np.where(np.isfinite(log_nu), log_b0.ravel(), 0.0)
     log_a_start = np.log(mu.ravel() + 1e-300) - _logsumexp_rows(log_k + log_b_start[None, :])
-    plan, info = ot.sinkhorn(
-        mu.ravel(), nu.ravel(), cost, reg=1.0, method="sinkhorn_log", numItermax=max_iter,
-        stopThr=tol, log=True, warn=False, warmstart=(log_a_start, log_b_start),
-    )
+    # POT also returns exp of the log-potentials, which overflows at small noise (log-potentials
+    # beyond 709); only the logs are used here
+    with np.errstate(over="ignore"):
+        plan, info = ot.sinkhorn(
+            mu.ravel(), nu.ravel(), cost, reg=1.0, method="sinkhorn_log", numItermax=max_iter,
+            stopThr=tol, log=True, warn=False, warmstart=(log_a_start, log_b_start),
+        )
     log_a = np.where(mu.ravel() > 0, info["log_u"], -np.inf).reshape(shape)
     log_b = np.where(nu.ravel() > 0, info["log_v"], -np.inf).reshape(shape)
     log_f = forward_sweep(ref, log_a)

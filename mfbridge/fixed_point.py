@@ -239,13 +239,18 @@ class _Bridge:
             lo, hi = faces(s.p.ndim, ax, self.shape[a])
             dphi = np.diff(s.phi, axis=ax)
             scale = 0.5 * noise**2 / self.grid.spacing[a] ** 2 * beta
-            # rho_i (1 - h_j/h_i) = p_i - f_i h_j, written with potentials to stay finite
-            s_fwd = s.p[lo] - np.exp(s.log_f[lo] + s.log_h[hi])
-            s_bwd = s.p[hi] - np.exp(s.log_f[hi] + s.log_h[lo])
-            edge = scale * (bernoulli_derivative(beta * dphi) * s_fwd
-                            - bernoulli_derivative(-beta * dphi) * s_bwd)
-            c[lo] -= edge
-            c[hi] += edge
+            # rho_i (1 - h_j/h_i) = p_i - f_i h_j, written with potentials to stay finite; far
+            # from the fixed point on a coarse grid (cell Péclet >> 1) f_i h_j can overflow: the
+            # residual is then infinite and the outer loop reports divergence
+            with np.errstate(over="ignore", invalid="ignore"):
+                s_fwd = s.p[lo] - np.exp(s.log_f[lo] + s.log_h[hi])
+                s_bwd = s.p[hi] - np.exp(s.log_f[hi] + s.log_h[lo])
+                edge = scale * (bernoulli_derivative(beta * dphi) * s_fwd
+                                - bernoulli_derivative(-beta * dphi) * s_bwd)
+                c[lo] -= edge
+                c[hi] += edge
+        if not np.all(np.isfinite(c)):
+            return np.full_like(c, np.nan)
         return self.scale * self.pair(c)
 
 
@@ -449,9 +454,11 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
                         f"refine the grid")
         warnings.warn(ConvergenceWarning(message), stacklevel=3)
     solve_seconds = float(sum(h["seconds"] for h in history))
-    result = _result(bridge, solved, ref, outcome.v_bar, options, route, status, message,
-                     it, residual, history,
-                     {"solve": solve_seconds, "total": time.perf_counter() - start_time})
+    # a diverged iterate may hold potentials whose products overflow: its cost is then inf/NaN
+    with np.errstate(**({} if status == "converged" else {"over": "ignore", "invalid": "ignore"})):
+        result = _result(bridge, solved, ref, outcome.v_bar, options, route, status, message,
+                         it, residual, history,
+                         {"solve": solve_seconds, "total": time.perf_counter() - start_time})
     if options.starts > 1:
         result.start = "cold" if warm_start is None else "warm"
         result = _other_starts(problem, options, route, result, callback)
