@@ -6,6 +6,7 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
+import ot
 import pytest
 import torch
 
@@ -284,3 +285,29 @@ def test_long_horizon_cost_tends_to_twice_the_free_energy_gap(mobility):
     assert gaps[0] > 4 * gaps[1] > 0, gaps
     assert abs(gaps[2]) < 0.1 * gaps[1], gaps
     assert abs(gaps[2]) < 0.007, gaps  # measured 4.63e-3 (walkers), 1.00e-3 (exclusion)
+
+
+@pytest.mark.slow
+def test_small_noise_cost_tends_to_the_transport_cost():
+    # chi = rho: sigma^2 J -> W_2^2(mu, nu) / (2T) as sigma -> 0 (entropic OT -> OT: Carlier,
+    # Duval, Peyré & Schmitzer, SIAM J. Math. Anal. 2017), W_2 from POT's exact ot.emd2, as in
+    # tests/test_limits.py. Measured on 128 cells x 32 steps: gaps 4.79e-2, 2.09e-2, 7.11e-3,
+    # 3.56e-3 (log-log slope 2.65; the main solver on 400 x 100 gives the same to 2 digits),
+    # last relative gap 2.75e-3.
+    grid = Grid(-3.0, 3.0, 128)
+    mu = GaussianMixture([0.5, 0.5], [-1.2, -0.4], [0.05, 0.05]).masses(grid)
+    nu = Gaussian(0.8, 0.1).masses(grid)
+    x = grid.axes[0]
+    w2sq = ot.emd2(mu, nu, (x[:, None] - x[None, :]) ** 2)
+    sigmas = np.array([0.4, 0.3, 0.2, 0.15])
+    gaps = []
+    for sigma in sigmas:
+        result = solve_direct(BridgeProblem(grid=grid, initial=mu, final=nu, noise=sigma,
+                                            horizon=1.0, steps=32), DirectOptions())
+        assert result.converged, result.message
+        gaps.append(sigma**2 * result.cost - w2sq / 2.0)
+    gaps = np.array(gaps)
+    assert np.all(gaps > 0) and np.all(np.diff(gaps) < 0), gaps
+    slope = np.polyfit(np.log(sigmas), np.log(gaps), 1)[0]
+    assert slope > 1.5, slope
+    assert gaps[-1] / (w2sq / 2) < 5e-3  # measured 2.75e-3
