@@ -12,10 +12,13 @@ Writes experiments/results/bench_direct.md and bench_direct_*.png.
 from __future__ import annotations
 
 import os
+import sys
 import time
 from pathlib import Path
 
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+# measure this checkout's package, not the editable install the interpreter would pick up
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 import numpy as np
 import torch
