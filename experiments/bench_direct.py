@@ -12,10 +12,13 @@ Writes experiments/results/bench_direct.md and bench_direct_*.png.
 from __future__ import annotations
 
 import os
+import sys
 import time
 from pathlib import Path
 
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+# measure this checkout's package, not the editable install the interpreter would pick up
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 import numpy as np
 import torch
@@ -64,6 +67,52 @@ def cross_check(n: int, k: int) -> list[str]:
                     f"({direct.iterations} it) |")
         print(rows[-1], flush=True)
     return rows
+
+
+def problem_2d(n: int, k: int) -> BridgeProblem:
+    return BridgeProblem(grid=Grid([-4.0, -4.0], [4.0, 4.0], [n, n]),
+                         initial=Gaussian([-1.0, -0.5], 0.36), final=Gaussian([1.0, 0.5], 0.25),
+                         noise=1.0, horizon=1.0, steps=k, confinement=Harmonic(1.0),
+                         interaction=GaussianCore(1.0, 0.7))
+
+
+def cross_check_2d(n: int, k: int) -> str:
+    problem = problem_2d(n, k)
+    t0 = time.perf_counter()
+    main = solve_bridge(problem, SolverOptions())
+    t_main = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    direct = solve_direct(problem, DirectOptions(tol=1e-7))
+    t_direct = time.perf_counter() - t0
+    dens = np.abs(main.density - direct.density).max() / main.density.max()
+    row = (f"| 2D Gaussian core W (1, 0.7) | {n}x{n} x {k} | {main.cost:.6f} | {direct.cost:.6f} | "
+           f"{direct.cost / main.cost - 1:+.2e} | {dens:.2e} | — | {t_main:.1f} | "
+           f"{t_direct:.1f} ({direct.iterations} it, {direct.status}) |")
+    print(row, flush=True)
+    return row
+
+
+def timing_2d(n: int, k: int, iterations: int) -> str:
+    """Seconds per L-BFGS iteration on an n x n grid (a capped run: full convergence takes
+    thousands of iterations)."""
+    import warnings
+
+    problem = problem_2d(n, k)
+    t0 = time.perf_counter()
+    main = solve_bridge(problem, SolverOptions())
+    t_main = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        direct = solve_direct(problem, DirectOptions(max_iter=iterations,
+                                                     warm_start="displacement"))
+    t_direct = time.perf_counter() - t0
+    solve_s = direct.timings["solve"]
+    row = (f"| {n}x{n} x {k} | {t_main:.1f} | {main.cost:.6f} | {direct.iterations} | "
+           f"{t_direct:.1f} | {solve_s / max(direct.iterations, 1):.3f} | "
+           f"{direct.cost:.6f} ({direct.cost / main.cost - 1:+.2e}) |")
+    print(row, flush=True)
+    return row
 
 
 def worked_example() -> tuple[list[str], list]:
@@ -117,20 +166,31 @@ def figures(results: dict, mass: float) -> None:
 def main() -> None:
     torch.set_num_threads(1)
     OUT.mkdir(parents=True, exist_ok=True)
+    load = f"{os.getloadavg()[0]:.1f}"
     lines = ["# Direct solver bench", "",
              "Cross-check (chi = rho, sigma = 1, T = 1, U = x^2/2): main fixed-point solver vs "
-             "direct L-BFGS solver on the same grid.", "",
+             "direct solver (truncated Newton in 1D, L-BFGS in 2D) on the same grid.",
+             f"Machine load at start (1-minute load average, 2 cores shared): {load}.", "",
              "| case | cells x steps | J main | J direct | rel. gap | max density gap / peak "
              "| exact J | main s | direct s |", "|---|---|---|---|---|---|---|---|---|"]
-    for n, k in ((48, 10), (96, 20)):
+    for n, k in ((48, 10), (96, 20), (192, 40)):
         lines += cross_check(n, k)
+    for n, k in ((16, 8), (24, 12)):
+        lines.append(cross_check_2d(n, k))
+    lines += ["", "2D timings (L-BFGS capped at the given iterations; the last column is J after "
+              "them, against the main solver's):", "",
+              "| grid x steps | main s | J main | direct it | direct s (with warm start) | "
+              "solve s / it | J direct |",
+              "|---|---|---|---|---|---|---|"]
+    for n, k, its in ((32, 8, 200), (64, 8, 50)):
+        lines.append(timing_2d(n, k, its))
     rows, (results, mass) = worked_example()
     lines += ["", "Worked example: tagged particles in a narrow channel (scenario of our own), "
               f"total mass {mass:.3f}, 64 cells, 16 steps, sigma = 1, U = 0.2 x^2/2.", "",
               "| mobility | J | kinetic | free-energy change | peak occupation | s | status |",
               "|---|---|---|---|---|---|---|", *rows, "",
               "Figures: bench_direct_channel.png (snapshots), bench_direct_<mobility>/ (standard "
-              "figures)."]
+              "figures).", "", f"Load average at the end: {os.getloadavg()[0]:.1f}."]
     (OUT / "bench_direct.md").write_text("\n".join(lines) + "\n")
     figures(results, mass)
 

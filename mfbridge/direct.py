@@ -26,10 +26,25 @@ solver an independent cross-check of it.
   - 1D: :math:`F_{k+1/2,i+1/2} = -(C_{k+1,i} - C_{k,i})/\Delta t` with
     :math:`C_{k,i} = \sum_{l\le i}|c|\rho_{k,l}` the mass left of the face (the smaller tail is
     differenced, so tails keep their relative precision);
-  - 2D: :math:`F = F^\phi + F^\psi`, a potential part :math:`F^\phi_a = \phi_{lo} - \phi_{hi}`
-    with :math:`-L\phi = -|c|(\rho_{k+1} - \rho_k)/\Delta t` (L the graph Laplacian with no-flux
-    walls, solved exactly in its cosine eigenbasis) plus the discrete curl of a stream function
-    ψ on interior vertices (divergence-free, zero at walls); ψ is a free variable;
+  - 2D: continuity leaves the fluxes free up to a divergence-free part, so for the given
+    densities the fluxes *minimising J* are used (the minimisation over F is done exactly):
+    with :math:`B = b|c|/h_a` (b below, in flux units) and face weights
+    :math:`m = \chi(\rho_f)|c|/h_a^2`,
+
+    .. math::
+
+        F = B + m\,(\lambda_{lo} - \lambda_{hi}),\qquad
+        \mathrm{div}_h\big(m\,(\lambda_{lo} - \lambda_{hi})\big)
+            = -|c|(\rho_{k+1} - \rho_k)/\Delta t - \mathrm{div}_h B,
+
+    a χ-weighted graph Laplace (Poisson) equation for λ on each step, no-flux walls (sparse
+    LU, :class:`_Incidence`); then :math:`j - b = -\chi(\rho_f)\nabla_h\lambda` and J below is
+    :math:`\frac{\Delta t}{2\sigma^2}\sum_k\sum_{faces}|c|\,\chi(\rho_f)|\nabla_h\lambda|^2`
+    (the continuous optimality condition :math:`j = b + \chi\nabla\lambda`). Gradients and
+    Hessian–vector products pass through the solve (:func:`_laplace_solve_function`), so no
+    flux variable is left: an unweighted potential flux plus a free stream function, tried
+    first, has :math:`(j - b)^2/\chi \sim 10^{11}` in the tails where χ ~ 1e-17, which only
+    the stream function could cancel, and L-BFGS never did;
 
 * on a face along axis a, between cells lo and hi, with midpoint-in-time densities
   :math:`\bar\rho = (\rho_k + \rho_{k+1})/2` and :math:`\rho_f = (\bar\rho_{lo} + \bar\rho_{hi})/2`:
@@ -50,11 +65,18 @@ Second order in h and Δt; for concave χ and constant D (and U = W = 0) it is j
   decreasing sequence of barrier weights μ (:func:`_interior_newton`), steps kept inside the
   mobility's domain by the fraction-to-the-boundary rule;
 * ``method="lbfgs"`` (and always in 2D): the interior densities as
-  :math:`\rho_k = M\,\mathrm{softmax}(z_k)/|c|` (positive, mass exactly M) and, in 2D, ψ;
+  :math:`\rho_k = M\,\mathrm{softmax}(z_k)/|c|` (positive, mass exactly M);
   L-BFGS with a backtracking line search that rejects any step leaving the
-mobility's domain (e.g. ρ ≥ 1 for exclusion). Warm start: McCann's displacement interpolation
+  mobility's domain (e.g. ρ ≥ 1 for exclusion). (Truncated Newton in 2D was tried with the
+  kinetic part's inverse Hessian, :math:`G T^{-1} G^\top`, T the time-difference matrix and
+  :math:`G_k = \mathrm{div}_h\,\mathrm{diag}(\sqrt{\chi_f|c|}/h)`, as preconditioner: 3–5 s per
+  Newton step at 16×16 × 8, no faster than L-BFGS, since the barrier dominates the tails'
+  curvature and the preconditioner ignores it.)
+
+Warm start: McCann's displacement interpolation
 (1D quantile interpolation; 2D from the exact plan of ``ot.emd``), blended with 1e-3 of the linear
-interpolation to keep every cell positive; the linear interpolation is used when the
+interpolation (itself mixed with 1e-12 of the uniform profile, as endpoints may vanish on far
+cells) to keep every cell positive; the linear interpolation is used when the
 displacement interpolation leaves the domain.
 
 **Mass scale**: :class:`~mfbridge.problem.BridgeProblem` stores normalised masses; the
@@ -70,6 +92,7 @@ interpolated to cell centres and time nodes (for walkers, σ²∇ψ of the main 
 
 from __future__ import annotations
 
+import functools
 import math
 import time
 import warnings
@@ -95,6 +118,7 @@ MAX_DIM = 2
 OT_MAX_CELLS = 4096
 MU0, MU_FACTOR = 1e-2, 0.1
 CHI_FLOOR = 1e-60
+FLOOR_MIX = 1e-12
 
 
 @dataclass(frozen=True)
@@ -165,8 +189,8 @@ class DirectAction:
     """The discretised action of ``problem`` with ``mobility`` at mass ``total_mass``.
 
     Works on torch float64 tensors: :meth:`value` takes the full density flow (K+1, *shape) in
-    1/length^d (total mass M per slice) and, in 2D, a stream function (K, n0-1, n1-1) (mass per
-    time), and returns J (a 0-d tensor) — see the module docstring for the formulas.
+    1/length^d (total mass M per slice) and returns J (a 0-d tensor; in 2D minimised over the
+    fluxes) — see the module docstring for the formulas.
     """
 
     def __init__(self, problem: BridgeProblem, mobility: Mobility | None = None,
@@ -205,17 +229,7 @@ class DirectAction:
         self.rho0 = torch.from_numpy(self.mass * problem.initial / self.vol)
         self.rho1 = torch.from_numpy(self.mass * problem.final / self.vol)
         if grid.dim == 2:
-            # cosine eigenbasis of the 1D no-flux graph Laplacian along each axis
-            self._bases = []
-            for n in grid.shape:
-                i = np.arange(n)
-                vec = np.cos(np.pi * np.outer(i + 0.5, i) / n)
-                vec /= np.linalg.norm(vec, axis=0)
-                self._bases.append((torch.from_numpy(vec),
-                                    torch.from_numpy(2.0 - 2.0 * np.cos(np.pi * i / n))))
-            lam = self._bases[0][1][:, None] + self._bases[1][1][None, :]
-            inv = torch.where(lam > 0, 1.0 / torch.where(lam > 0, lam, 1.0), 0.0)
-            self._inv_lap = inv
+            self._incidence = _Incidence(grid.shape)
 
     # ---------------------------------------------------------------- pieces
     def mean_field(self, rho: Any) -> Any:
@@ -230,68 +244,76 @@ class DirectAction:
         index = (Ellipsis, *(slice(n - 1, 2 * n - 1) for n in self.shape))
         return self.confinement + full[index]
 
-    def fluxes(self, rho: Any, stream: Any = None) -> tuple[Any, ...]:
-        """Face fluxes F (mass per time) on every step satisfying continuity exactly; one array
-        per axis, shape (K, *shape) with that axis one shorter."""
+    def fluxes(self, rho: Any) -> tuple[Any, ...]:
+        """1D: the face fluxes F (mass per time) on every step fixed by continuity, shape
+        (K, n-1) (the smaller tail's cumulative mass is differenced)."""
         import torch
 
         m = rho * self.vol
-        if self.grid.dim == 1:
-            left = torch.cumsum(m, dim=1)[:, :-1]
-            right = torch.flip(torch.cumsum(torch.flip(m, dims=[1]), dim=1), dims=[1])[:, 1:]
-            small_left = 0.5 * (left[1:] + left[:-1]) < 0.5 * self.mass
-            flux = torch.where(small_left, -(left[1:] - left[:-1]) / self.dt,
-                               (right[1:] - right[:-1]) / self.dt)
-            return (flux,)
-        source = -(m[1:] - m[:-1]) / self.dt  # outflow each cell must have, (K, n0, n1)
-        v0, _ = self._bases[0]
-        v1, _ = self._bases[1]
-        hat = v0.T @ source @ v1
-        phi = v0 @ (hat * self._inv_lap) @ v1.T
-        fx = phi[:, :-1, :] - phi[:, 1:, :]
-        fy = phi[:, :, :-1] - phi[:, :, 1:]
-        if stream is not None:
-            k, n0, n1 = source.shape
-            full = torch.zeros((k, n0 + 1, n1 + 1), dtype=rho.dtype)
-            full[:, 1:n0, 1:n1] = stream
-            fx = fx + full[:, 1:n0, 1:] - full[:, 1:n0, :-1]
-            fy = fy - (full[:, 1:, 1:n1] - full[:, :-1, 1:n1])
-        return (fx, fy)
+        left = torch.cumsum(m, dim=1)[:, :-1]
+        right = torch.flip(torch.cumsum(torch.flip(m, dims=[1]), dim=1), dims=[1])[:, 1:]
+        small_left = 0.5 * (left[1:] + left[:-1]) < 0.5 * self.mass
+        flux = torch.where(small_left, -(left[1:] - left[:-1]) / self.dt,
+                           (right[1:] - right[:-1]) / self.dt)
+        return (flux,)
 
-    def face_terms(self, rho: Any, stream: Any = None, fluxes: tuple[Any, ...] | None = None,
+    def optimal_fluxes(self, rho: Any, drifts: list[Any], chis: list[Any]) -> tuple[Any, ...]:
+        r"""2D: the fluxes F minimising J at fixed ρ under exact continuity, one array per axis
+        (K, *faces).
+
+        With :math:`B = b|c|/h_a` and face weights :math:`m = \chi_f|c|/h_a^2`, minimising
+        :math:`\sum (F - B)^2/m` subject to :math:`\mathrm{div}_h F = s`,
+        :math:`s = -|c|(\rho_{k+1} - \rho_k)/\Delta t`, gives :math:`F = B + m\,\delta\lambda`
+        (δλ = λ_lo - λ_hi) with :math:`\mathrm{div}_h(m\,\delta\lambda) = s - \mathrm{div}_h B`,
+        a χ-weighted graph Laplace equation per step with no-flux walls (:class:`_Incidence`)."""
+        inc = self._incidence
+        m = rho * self.vol
+        source = (-(m[1:] - m[:-1]) / self.dt).reshape(len(rho) - 1, -1)
+        big_b = [b * self.vol / h for b, h in zip(drifts, self.grid.spacing, strict=True)]
+        weight = [c * self.vol / h**2 for c, h in zip(chis, self.grid.spacing, strict=True)]
+        flat_b, flat_w = inc.flatten(big_b), inc.flatten(weight)
+        lam = _laplace_solve_function().apply(flat_w, source - inc.div(flat_b), inc)
+        flux = flat_b + flat_w * inc.grad(lam)
+        return inc.unflatten(flux)
+
+    def face_terms(self, rho: Any, fluxes: tuple[Any, ...] | None = None,
                    phi: Any = None) -> list[tuple[Any, Any, Any, Any]]:
         """Per axis: (j, b, χ_f, ρ_f) on every face and step, shapes (K, faces...).
 
-        ``fluxes`` (one array per axis) replaces :meth:`fluxes`, and ``phi`` (K, *shape) the
-        mean field Φ̄ of the step midpoints (the preconditioner freezes it)."""
+        ``fluxes`` (one array per axis) replaces the continuity fluxes (1D) or the optimal ones
+        (2D), and ``phi`` (K, *shape) the mean field Φ̄ of the step midpoints (the
+        preconditioner freezes it)."""
         mid = 0.5 * (rho[1:] + rho[:-1])
         if phi is None:
             phi = self.mean_field(mid)
-        if fluxes is None:
-            fluxes = self.fluxes(rho, stream)
-        out = []
-        for a, flux in enumerate(fluxes):
+        drifts, chis, rfs = [], [], []
+        for a in range(self.grid.dim):
             h = self.grid.spacing[a]
             lo, hi = faces(mid.ndim, 1 + a, self.shape[a])
             rf = 0.5 * (mid[lo] + mid[hi])
             chi = self.mobility.chi(rf)
             b = (-0.5 * self.noise**2 * self.mobility.d(rf) * (mid[hi] - mid[lo])
                  - chi * (phi[hi] - phi[lo])) / h
-            j = flux * h / self.vol
-            out.append((j, b, chi, rf))
-        return out
+            drifts.append(b)
+            chis.append(chi)
+            rfs.append(rf)
+        if fluxes is None:
+            fluxes = (self.fluxes(rho) if self.grid.dim == 1
+                      else self.optimal_fluxes(rho, drifts, chis))
+        return [(flux * h / self.vol, b, chi, rf) for flux, h, b, chi, rf
+                in zip(fluxes, self.grid.spacing, drifts, chis, rfs, strict=True)]
 
-    def value(self, rho: Any, stream: Any = None) -> Any:
-        """J of the density flow ``rho`` (K+1, *shape) (and stream function in 2D)."""
+    def value(self, rho: Any) -> Any:
+        """J of the density flow ``rho`` (K+1, *shape)."""
         total = 0.0
-        for j, b, chi, _ in self.face_terms(rho, stream):
+        for j, b, chi, _ in self.face_terms(rho):
             total = total + ((j - b) ** 2 / chi).sum()
         return total * self.vol * self.dt / (2.0 * self.noise**2)
 
-    def kinetic(self, rho: Any, stream: Any = None) -> Any:
+    def kinetic(self, rho: Any) -> Any:
         r""":math:`\frac{1}{2\sigma^2}\iint |j|^2/\chi` of the flow."""
         total = 0.0
-        for j, _, chi, _ in self.face_terms(rho, stream):
+        for j, _, chi, _ in self.face_terms(rho):
             total = total + (j**2 / chi).sum()
         return total * self.vol * self.dt / (2.0 * self.noise**2)
 
@@ -307,11 +329,107 @@ class DirectAction:
         return 0.5 * self.noise**2 * fdens.sum(axis=axes) * self.vol + energy
 
 
+class _Incidence:
+    """Cell–face incidence of a 2D grid with no-flux walls: face f between cells lo(f) and
+    hi(f) (flat indices; axis-0 faces first, then axis-1 faces), F > 0 from lo to hi."""
+
+    def __init__(self, shape: tuple[int, ...]) -> None:
+        import scipy.sparse as sp
+        import torch
+
+        n0, n1 = shape
+        idx = np.arange(n0 * n1).reshape(n0, n1)
+        lo = np.concatenate([idx[:-1, :].ravel(), idx[:, :-1].ravel()])
+        hi = np.concatenate([idx[1:, :].ravel(), idx[:, 1:].ravel()])
+        self.shapes = [(n0 - 1, n1), (n0, n1 - 1)]
+        self.cells = n0 * n1
+        self.lo, self.hi = torch.from_numpy(lo), torch.from_numpy(hi)
+        f = np.arange(len(lo))
+        # div_h: (cells x faces), the outflow of each cell
+        self.div_matrix = sp.csr_matrix(
+            (np.r_[np.ones(len(lo)), -np.ones(len(lo))], (np.r_[lo, hi], np.r_[f, f])),
+            shape=(self.cells, len(lo)))
+
+    def flatten(self, per_axis: list[Any]) -> Any:
+        import torch
+
+        return torch.cat([x.reshape(len(x), -1) for x in per_axis], dim=1)
+
+    def unflatten(self, flat: Any) -> tuple[Any, ...]:
+        n_first = int(np.prod(self.shapes[0]))
+        return (flat[:, :n_first].reshape(-1, *self.shapes[0]),
+                flat[:, n_first:].reshape(-1, *self.shapes[1]))
+
+    def grad(self, lam: Any) -> Any:
+        """δλ = λ_lo - λ_hi on every face, (K, faces), of cell values (K, cells)."""
+        return lam[:, self.lo] - lam[:, self.hi]
+
+    def div(self, flux: Any) -> Any:
+        """Outflow of every cell, (K, cells), of face fluxes (K, faces)."""
+        out = flux.new_zeros((flux.shape[0], self.cells))
+        return out.index_add(1, self.lo, flux).index_add(1, self.hi, -flux)
+
+    def factor(self, weight: np.ndarray) -> list[tuple[np.ndarray, np.ndarray, Any]]:
+        """Sparse LU of div_h diag(w) div_hᵀ for each row of ``weight`` (K, faces): the cell of
+        largest diagonal is pinned (λ = 0 there: the Laplacian's null space is the constants),
+        the rest scaled symmetrically by the diagonal (the weights χ span many orders of
+        magnitude)."""
+        import scipy.sparse as sp
+        from scipy.sparse.linalg import splu
+
+        out = []
+        for w in weight:
+            lap = (self.div_matrix @ sp.diags(np.maximum(w, CHI_FLOOR))
+                   @ self.div_matrix.T).tocsc()
+            diag = lap.diagonal()
+            keep = np.ones(self.cells, dtype=bool)
+            keep[int(np.argmax(diag))] = False
+            scale = 1.0 / np.sqrt(diag[keep])
+            reduced = sp.diags(scale) @ lap[keep][:, keep] @ sp.diags(scale)
+            out.append((keep, scale, splu(reduced.tocsc())))
+        return out
+
+    def solve(self, factors: list[tuple[np.ndarray, np.ndarray, Any]],
+              rhs: np.ndarray) -> np.ndarray:
+        x = np.zeros_like(rhs)
+        for k, (keep, scale, lu) in enumerate(factors):
+            x[k, keep] = scale * lu.solve(scale * rhs[k, keep])
+        return x
+
+
+@functools.cache
+def _laplace_solve_function() -> Any:
+    """torch Function λ = S(w) r with S(w) the pinned inverse of div_h diag(w) div_hᵀ (a
+    symmetric map), differentiable to any order: dλ = S dr - S (div_h diag(dw) div_hᵀ) λ, so
+    the backward of an output gradient g is (y = S g): ∂/∂r = y, ∂/∂w_f = -δy_f δλ_f, built
+    from the same Function (double backward for Hessian–vector products)."""
+    import torch
+
+    class WeightedLaplaceSolve(torch.autograd.Function):
+        @staticmethod
+        def forward(ctx: Any, weight: Any, rhs: Any, inc: _Incidence,
+                    factors: Any = None) -> Any:
+            if factors is None:
+                factors = inc.factor(weight.detach().numpy())
+            lam = torch.from_numpy(inc.solve(factors, rhs.detach().numpy()))
+            ctx.save_for_backward(weight, lam)
+            ctx.inc, ctx.factors = inc, factors
+            return lam
+
+        @staticmethod
+        def backward(ctx: Any, grad: Any) -> Any:
+            weight, lam = ctx.saved_tensors
+            y = WeightedLaplaceSolve.apply(weight, grad, ctx.inc, ctx.factors)
+            return -ctx.inc.grad(y) * ctx.inc.grad(lam), y, None, None
+
+    return WeightedLaplaceSolve
+
+
 def action(problem: BridgeProblem, density: np.ndarray, mobility: Mobility | None = None,
            total_mass: float = 1.0) -> float:
     """J of a flow of *normalised* densities ``density`` (K+1, *grid.shape) of ``problem``
     (each slice integrating to 1; scaled by ``total_mass`` for the mobility), with the
-    continuity-exact fluxes of :class:`DirectAction` (in 2D: the curl-free part only).
+    continuity-exact fluxes of :class:`DirectAction` (in 2D: the optimal ones).
     Endpoint slices are used as given."""
     import torch
 
@@ -547,7 +665,8 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
     grid, mob, mass = problem.grid, options.mobility, options.total_mass
     vol = grid.cell_volume
     k_steps = problem.steps
-    linear = _linear_interpolation(problem)
+    # endpoints may vanish on far cells; the interior must not (χ > 0, barrier)
+    linear = (1 - FLOOR_MIX) * _linear_interpolation(problem) + FLOOR_MIX / grid.size
     if options.warm_start == "displacement" and k_steps > 1:
         guess = 0.999 * displacement_interpolation(problem) + 0.001 * linear
         if not _inside(mob, mass * guess[1:-1] / vol):
@@ -557,7 +676,7 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
     interior = guess[1:-1]
     if k_steps > 1 and not _inside(mob, mass * interior / vol):
         raise InputError("the linear interpolation of the endpoints leaves the mobility's domain")
-    # Newton's preconditioner exists for 1D only (see _preconditioner_1d); 2D uses L-BFGS
+    # Newton's preconditioner exists in 1D only (_preconditioner_1d); 2D uses L-BFGS
     use_lbfgs = options.method == "lbfgs" or grid.dim == 2
     if use_lbfgs:
         unpack, x0 = _softmax_variables(act, guess)
@@ -571,10 +690,10 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
         opt = _interior_newton(objective, x0, options, callback)
     solve_seconds = time.perf_counter() - start - setup
     with torch.no_grad():
-        rho_t, stream_t = unpack(torch.from_numpy(opt.x))
-        cost = float(act.value(rho_t, stream_t))
-        kinetic = float(act.kinetic(rho_t, stream_t))
-        terms = act.face_terms(rho_t, stream_t)
+        rho_t = unpack(torch.from_numpy(opt.x))
+        cost = float(act.value(rho_t))
+        kinetic = float(act.kinetic(rho_t))
+        terms = act.face_terms(rho_t)
         velocity = [((j - b) / rf).numpy() for j, b, _, rf in terms]
     rho = rho_t.numpy()
     p = rho * vol / mass
@@ -625,50 +744,38 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
     )
 
 
-Unpack = Callable[[Any], tuple[Any, Any]]
+Unpack = Callable[[Any], Any]
 
 
 def _softmax_variables(act: DirectAction, guess: np.ndarray) -> tuple[Unpack, np.ndarray]:
-    """Free variables z (interior densities ρ_k = M softmax(z_k)/|c|) and, in 2D, the stream
-    function; returns the map x ↦ (ρ (K+1, *shape), stream) and the starting point."""
+    """Free variables z (interior densities ρ_k = M softmax(z_k)/|c|); returns the map
+    x ↦ ρ (K+1, *shape) and the starting point."""
     import torch
 
     grid, k_steps, mass, vol = act.grid, act.problem.steps, act.mass, act.vol
-    z0 = np.log(np.maximum(guess[1:-1], 1e-300)).reshape(k_steps - 1, -1)
-    n_z = z0.size
-    stream_shape = (k_steps, grid.shape[0] - 1, grid.shape[1] - 1) if grid.dim == 2 else None
-    n_stream = int(np.prod(stream_shape)) if stream_shape is not None else 0
-    x0 = np.concatenate([z0.ravel(), np.zeros(n_stream)])
+    x0 = np.log(np.maximum(guess[1:-1], 1e-300)).ravel()
 
-    def unpack(x: Any) -> tuple[Any, Any]:
-        z = x[:n_z].reshape(k_steps - 1, -1)
+    def unpack(x: Any) -> Any:
+        z = x.reshape(k_steps - 1, -1)
         rho_int = (mass / vol) * torch.softmax(z, dim=1).reshape(k_steps - 1, *grid.shape)
-        rho = torch.cat([act.rho0[None], rho_int, act.rho1[None]], dim=0)
-        stream = x[n_z:].reshape(stream_shape) if stream_shape is not None else None
-        return rho, stream
+        return torch.cat([act.rho0[None], rho_int, act.rho1[None]], dim=0)
 
     return unpack, x0
 
 
 def _density_variables(act: DirectAction, guess: np.ndarray) -> tuple[Unpack, np.ndarray]:
     """Free variables y (interior densities ρ_k = Πy_k + M/(n|c|), Π removing each slice's
-    mean, so the mass is exactly M and ρ is linear in y) and, in 2D, the stream function."""
+    mean, so the mass is exactly M and ρ is linear in y)."""
     import torch
 
     grid, k_steps, mass, vol = act.grid, act.problem.steps, act.mass, act.vol
-    y0 = (mass * guess[1:-1] / vol).reshape(k_steps - 1, -1)
-    n_y = y0.size
+    x0 = (mass * guess[1:-1] / vol).ravel()
     level = mass / (vol * grid.size)
-    stream_shape = (k_steps, grid.shape[0] - 1, grid.shape[1] - 1) if grid.dim == 2 else None
-    n_stream = int(np.prod(stream_shape)) if stream_shape is not None else 0
-    x0 = np.concatenate([y0.ravel(), np.zeros(n_stream)])
 
-    def unpack(x: Any) -> tuple[Any, Any]:
-        y = x[:n_y].reshape(k_steps - 1, -1)
+    def unpack(x: Any) -> Any:
+        y = x.reshape(k_steps - 1, -1)
         rho_int = (y - y.mean(dim=1, keepdim=True) + level).reshape(k_steps - 1, *grid.shape)
-        rho = torch.cat([act.rho0[None], rho_int, act.rho1[None]], dim=0)
-        stream = x[n_y:].reshape(stream_shape) if stream_shape is not None else None
-        return rho, stream
+        return torch.cat([act.rho0[None], rho_int, act.rho1[None]], dim=0)
 
     return unpack, x0
 
@@ -767,10 +874,10 @@ class _Objective:
     def _evaluate(self, x: Any) -> Any:
         import torch
 
-        rho, stream = self.unpack(x)
+        rho = self.unpack(x)
         if not _inside(self.mob, rho[1:-1].detach().numpy()):
             return None
-        value = self.act.value(rho, stream)
+        value = self.act.value(rho)
         if self.barrier > 0:
             inner = rho[1:-1]
             value = value - self.barrier * self.act.vol * torch.log(inner - self.mob.lower).sum()
@@ -847,7 +954,7 @@ def _preconditioner_1d(objective: _Objective) -> Callable[[np.ndarray], Operator
     def build(x_np: np.ndarray) -> Operator:
         nonlocal total
         with torch.no_grad():
-            rho, _ = unpack(torch.from_numpy(x_np))
+            rho = unpack(torch.from_numpy(x_np))
             phi = act.mean_field(0.5 * (rho[1:] + rho[:-1]))
             cum = torch.cumsum(rho * vol, dim=1)[:, :-1]
         total = torch.full((k_steps + 1, 1), mass, dtype=torch.float64)
@@ -903,3 +1010,5 @@ def _preconditioner_1d(objective: _Objective) -> Callable[[np.ndarray], Operator
         return apply
 
     return build
+
+
