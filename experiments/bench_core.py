@@ -315,13 +315,20 @@ def vm_hwm_mb() -> float:
     return float("nan")
 
 
-def run_2d(kind: str, n: int, steps: int) -> dict[str, Any]:
+def in_child(target: Any, args: tuple[Any, ...]) -> dict[str, Any]:
+    """Run ``target(*args, queue)`` in a fresh spawned process (its own peak memory) and return
+    what it puts on the queue."""
     ctx = multiprocessing.get_context("spawn")
     queue = ctx.Queue()
-    proc = ctx.Process(target=_child_2d, args=(kind, n, steps, queue))
+    proc = ctx.Process(target=target, args=(*args, queue))
     proc.start()
     row = queue.get()
     proc.join()
+    return row
+
+
+def run_2d(kind: str, n: int, steps: int) -> dict[str, Any]:
+    row = in_child(_child_2d, (kind, n, steps))
     log(f"  2D {kind} {n}x{n} K={steps}: {row.get('status', row.get('error'))}, "
         f"{row.get('time', float('nan')):.2f} s")
     return row

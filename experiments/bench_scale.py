@@ -36,7 +36,6 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS",
 
 import argparse
 import json
-import multiprocessing
 import platform
 import shutil
 import sys
@@ -58,6 +57,7 @@ from bench_core import (  # the problems of the core benchmark
     NOISE,
     STIFFNESS,
     STRENGTH,
+    in_child,
     lq_errors,
     md_table,
     problem_nd,
@@ -176,12 +176,7 @@ def _run(case: tuple[str, str, int, int], figures: str | None) -> dict[str, Any]
 
 
 def run_case(case: tuple[str, str, int, int], figures: str | None) -> dict[str, Any]:
-    ctx = multiprocessing.get_context("spawn")
-    queue = ctx.Queue()
-    proc = ctx.Process(target=_child, args=(case, figures, queue))
-    proc.start()
-    row = queue.get()
-    proc.join()
+    row = in_child(_child, (case, figures))
     log(f"  {case}: {row.get('status', row.get('error'))}, {row.get('time', float('nan')):.1f} s,"
         f" peak {row.get('vmhwm_after_mb', float('nan')):.0f} MB")
     return row
