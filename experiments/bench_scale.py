@@ -291,7 +291,10 @@ def report(out: Path, rows: list[dict[str, Any]], skipped: list[str], mode: str,
           "including interpreter, imports and problem set-up; in brackets the value just before "
           "`solve_bridge`. LU estimate: d × K × cells × "
           f"{LU_BYTES_PER_CELL} B, the `zgttrf` factors cached by the step operators "
-          "(10 poles × (4 complex128 + 1 int32) per cell, per axis, per step). "
+          "(10 poles × (4 complex128 + 1 int32) per cell, per axis, per step) if every axis "
+          "factor used the contour method; in 2D and 3D `method=auto` picks uniformisation, "
+          "which caches no factors, so this is an upper bound used to skip cases that would "
+          "not fit. "
           "result.nc: size of the saved netCDF and the save/load times (the round trip is "
           "checked bit for bit: "
           + ", ".join(str(r.get("round_trip_exact")) for r in rows if "error" not in r) + ").",
