@@ -88,7 +88,7 @@ class SolverOptions:
       and the L1 error of the initial marginal are both below it;
     * ``anderson`` (history depth, 0 = plain iteration) and ``damping`` (mixing weight in (0, 1]);
     * ``sinkhorn_tol``, ``sinkhorn_max_iter``: the entropic sub-problem's own stopping rule (its
-      tolerance is loosened to 1e-2 × the outer residual, at most 1e-3, while the outer loop
+      tolerance is loosened to 1e-2 × the outer residual, at most 0.1, while the outer loop
       is far out, and tightened 100-fold whenever the outer residual stalls);
     * ``propagation``: how time steps are applied in the sweeps: ``"rational"`` (fast; values
       below ~1e-11 of the largest are lost), ``"log"`` (exact in the log domain, any dynamic
