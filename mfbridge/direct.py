@@ -507,11 +507,6 @@ def displacement_interpolation(problem: BridgeProblem) -> np.ndarray:
     return out
 
 
-def _linear_interpolation(problem: BridgeProblem) -> np.ndarray:
-    s = (problem.times / problem.horizon).reshape(-1, *([1] * problem.grid.dim))
-    return (1 - s) * problem.initial + s * problem.final
-
-
 # --------------------------------------------------------------------------- L-BFGS
 
 
@@ -666,7 +661,7 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
     vol = grid.cell_volume
     k_steps = problem.steps
     # endpoints may vanish on far cells; the interior must not (χ > 0, barrier)
-    linear = (1 - FLOOR_MIX) * _linear_interpolation(problem) + FLOOR_MIX / grid.size
+    linear = (1 - FLOOR_MIX) * problem.linear_flow() + FLOOR_MIX / grid.size
     if options.warm_start == "displacement" and k_steps > 1:
         guess = 0.999 * displacement_interpolation(problem) + 0.001 * linear
         if not _inside(mob, mass * guess[1:-1] / vol):

@@ -43,8 +43,9 @@ At s cells the point rule's aliasing error in the total mass is about 2·exp(-2�
 5e-9 at s = 1, 1.4e-2 at s = 0.5 (Poisson summation of a Gaussian)."""
 
 
-def _box_text(lower: Any, upper: Any) -> str:
-    return " × ".join(f"[{lo:g}, {up:g}]" for lo, up in zip(lower, upper, strict=True))
+def box_text(lower: Any, upper: Any, spec: str = "g") -> str:
+    """A box as '[lo, up] × …', each bound formatted with ``spec``."""
+    return " × ".join(f"[{lo:{spec}}, {up:{spec}}]" for lo, up in zip(lower, upper, strict=True))
 
 
 def _check_dim(endpoint: Endpoint, grid: Grid, name: str) -> None:
@@ -150,7 +151,7 @@ class Endpoint(ABC):
     def _outside(self, name: str, outside: float, grid: Grid, limit: float) -> str:
         return (
             f"{100 * outside:.3g}% of the {name} distribution lies outside the box "
-            f"{_box_text(grid.lower, grid.upper)} (at most {100 * limit:.3g}% allowed): "
+            f"{box_text(grid.lower, grid.upper)} (at most {100 * limit:.3g}% allowed): "
             "enlarge the grid or move the endpoint"
         )
 
@@ -400,8 +401,8 @@ class UniformBox(Endpoint):
         tol = 1e-12 * np.asarray(grid.extent)
         if np.any(self.lower < g_lo - tol) or np.any(self.upper > g_up + tol):
             raise InputError(
-                f"the {name} distribution UniformBox {_box_text(self.lower, self.upper)} is not "
-                f"inside the grid box {_box_text(grid.lower, grid.upper)}: enlarge the grid or "
+                f"the {name} distribution UniformBox {box_text(self.lower, self.upper)} is not "
+                f"inside the grid box {box_text(grid.lower, grid.upper)}: enlarge the grid or "
                 "move the box"
             )
         fractions = []
@@ -415,7 +416,7 @@ class UniformBox(Endpoint):
         total = float(m.sum())
         if total <= 0.0:
             raise InputError(
-                f"the {name} distribution UniformBox {_box_text(self.lower, self.upper)} covers "
+                f"the {name} distribution UniformBox {box_text(self.lower, self.upper)} covers "
                 "no grid cell"
             )
         return m / total

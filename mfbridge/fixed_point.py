@@ -372,7 +372,7 @@ def _noise_continuation(problem: BridgeProblem, options: SolverOptions, route: s
     m = options.noise_continuation
     noises = [problem.noise * 2.0 ** (m - j) for j in range(m + 1)]
     stage = dataclasses.replace(problem, noise=noises[0])
-    outcome = _attempt(stage, 1.0, options, route, _cold_start(_Bridge(stage)), history,
+    outcome = _attempt(stage, 1.0, options, route, _cold_start(stage), history,
                        callback)
     for noise in noises[1:]:
         if outcome.status != "converged":
@@ -385,10 +385,8 @@ def _noise_continuation(problem: BridgeProblem, options: SolverOptions, route: s
     return outcome
 
 
-def _cold_start(bridge: _Bridge) -> _Start:
-    problem = bridge.problem
-    s = bridge.expand(problem.times / problem.horizon)
-    p_bar = (1 - s) * problem.initial + s * problem.final
+def _cold_start(problem: BridgeProblem) -> _Start:
+    p_bar = problem.linear_flow()
     return _Start(p_bar, np.zeros_like(p_bar), np.zeros(problem.grid.shape))
 
 
@@ -405,10 +403,8 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
             f"the static coupling of {grid.size} cells needs an n x n kernel; it is available up "
             f"to {COUPLING_MAX_CELLS} cells (use route=operator without coupling)"
         )
-    bridge = _Bridge(problem)
-    interacting = not bridge.pair.is_zero
     if warm_start is None:
-        start = _cold_start(bridge)
+        start = _cold_start(problem)
     else:
         # a result without Schrödinger potentials (the direct solver's) has NaN there
         start = _Start(warm_start.masses,
@@ -422,9 +418,10 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
         outcome = _noise_continuation(problem, options, route, history, callback)
         note = (f" (by continuation in the noise from {outcome.noise_start:.3g} over "
                 f"{options.noise_continuation} stages)")
-    if outcome.status != "converged" and options.continuation > 0 and interacting:
+    if (outcome.status != "converged" and options.continuation > 0
+            and not outcome.bridge.pair.is_zero):
         m = options.continuation
-        start = _cold_start(bridge)
+        start = _cold_start(problem)
         for j in range(1, m + 1):
             outcome = _attempt(problem, j / m, options, route, start, history, callback,
                                log_domain=outcome.log_domain)

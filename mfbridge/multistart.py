@@ -42,6 +42,7 @@ import warnings
 
 import numpy as np
 
+from mfbridge import observables
 from mfbridge.errors import MultipleBridgesWarning
 from mfbridge.problem import BridgeProblem
 from mfbridge.result import Alternative, BridgeResult
@@ -68,14 +69,10 @@ def flow_distance(p: np.ndarray, q: np.ndarray) -> float:
 def _spreads(problem: BridgeProblem) -> np.ndarray:
     """The larger of the two endpoint standard deviations along each axis, shape (d,)."""
     grid = problem.grid
-    out = np.zeros(grid.dim)
-    for a in range(grid.dim):
-        x = grid.points[..., a]
-        for m in (problem.initial, problem.final):
-            mean = float((m * x).sum())
-            out[a] = max(out[a], float(np.sqrt(max((m * (x - mean) ** 2).sum(), 0.0))))
+    _, cov = observables.moments(np.stack([problem.initial, problem.final]), grid)
+    variances = np.clip(np.diagonal(cov, axis1=1, axis2=2), 0.0, None).max(axis=0)
     # a point mass: use one cell, so the tilt stays finite
-    return np.maximum(out, np.asarray(grid.spacing))
+    return np.maximum(np.sqrt(variances), np.asarray(grid.spacing))
 
 
 def tilted_flows(problem: BridgeProblem, count: int) -> list[tuple[str, np.ndarray]]:
@@ -87,7 +84,7 @@ def tilted_flows(problem: BridgeProblem, count: int) -> list[tuple[str, np.ndarr
     rounded = np.round(spreads / spreads.max(), 9)
     order = sorted(range(grid.dim), key=lambda a: (-rounded[a], a))
     s = (problem.times / problem.horizon).reshape(-1, *([1] * grid.dim))
-    base = (1 - s) * problem.initial + s * problem.final
+    base = problem.linear_flow()
     bump = 4 * s * (1 - s)
     out = []
     for i in range(count):

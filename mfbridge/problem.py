@@ -67,3 +67,9 @@ class BridgeProblem:
     @property
     def dt(self) -> float:
         return self.horizon / self.steps
+
+    def linear_flow(self) -> np.ndarray:
+        r""":math:`(1 - t/T)\,\mu + (t/T)\,\nu` at every time node: masses, shape
+        (K+1, *grid.shape). The usual first guess of a flow."""
+        s = (self.times / self.horizon).reshape(-1, *([1] * self.grid.dim))
+        return (1 - s) * self.initial + s * self.final

@@ -71,7 +71,7 @@ from typing import Any, ClassVar
 import numpy as np
 from scipy.linalg import solve_triangular
 
-from mfbridge.endpoints import MIN_WIDTH_CELLS, Endpoint
+from mfbridge.endpoints import MIN_WIDTH_CELLS, Endpoint, box_text
 from mfbridge.errors import InputError
 from mfbridge.grid import MAX_DIM, Grid, _to_plain
 
@@ -674,10 +674,11 @@ class Samples(Endpoint):
             lo = data.positions[carried].min(axis=0)
             hi = data.positions[carried].max(axis=0)
             first = int(np.flatnonzero(outside)[0])
+            box, span = box_text(lower, upper, ".4g"), box_text(lo, hi, ".4g")
             raise InputError(
                 f"{int(outside.sum())} of the {int(carried.sum())} {name} samples ({self.source}) "
-                f"lie outside the box {_box(lower, upper)}, first at {data.where(first)}; the data "
-                f"span {_box(lo, hi)}: use grid=span (a box fitted to the data) or enlarge "
+                f"lie outside the box {box}, first at {data.where(first)}; the data "
+                f"span {span}: use grid=span (a box fitted to the data) or enlarge "
                 "grid.lower/grid.upper"
             )
 
@@ -710,9 +711,10 @@ class Samples(Endpoint):
         )
 
     def _outside(self, name: str, outside: float, grid: Grid, limit: float) -> str:
+        box = box_text(grid.lower, grid.upper, ".4g")
         return (
             f"{100 * outside:.3g}% of the kernel density of the {name} samples "
-            f"({self.source}) lies outside the box {_box(grid.lower, grid.upper)} (at most "
+            f"({self.source}) lies outside the box {box} (at most "
             f"{100 * limit:.3g}% allowed): kernels of samples near the walls spill over; "
             "use grid=span, enlarge the box, or give a smaller bandwidth"
         )
@@ -757,10 +759,6 @@ class Samples(Endpoint):
         return (f"Samples(path={str(self.path)!r}, columns={self.columns!r}, "
                 f"weights={self.weights_name!r}, bandwidth={self.bandwidth!r}, "
                 f"method={self.method!r})")
-
-
-def _box(lower: Any, upper: Any) -> str:
-    return " × ".join(f"[{lo:.4g}, {up:.4g}]" for lo, up in zip(lower, upper, strict=True))
 
 
 # --------------------------------------------------------------------------- boxes
