@@ -104,7 +104,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from mfbridge import observables
-from mfbridge.errors import ConvergenceWarning, InputError, unknown_name
+from mfbridge.errors import ConvergenceWarning, InputError, is_real_number, unknown_name
 from mfbridge.grid import Grid
 from mfbridge.mobility import Mobility, Walkers
 from mfbridge.newton import NewtonResult, Operator, SecondOrder, minimise
@@ -158,14 +158,14 @@ class DirectOptions:
         if self.method not in METHODS:
             raise unknown_name("method", self.method, METHODS)
         checks = [
-            ("total_mass", _is_number(self.total_mass) and math.isfinite(self.total_mass)
+            ("total_mass", is_real_number(self.total_mass)
              and self.total_mass > 0),
             ("max_iter", _is_int(self.max_iter) and self.max_iter >= 1),
             ("max_cg", _is_int(self.max_cg) and self.max_cg >= 1),
             ("memory", _is_int(self.memory) and self.memory >= 1),
             ("window", _is_int(self.window) and self.window >= 1),
-            ("tol", _is_number(self.tol) and self.tol >= 0),
-            ("gtol", _is_number(self.gtol) and self.gtol >= 0),
+            ("tol", is_real_number(self.tol) and self.tol >= 0),
+            ("gtol", is_real_number(self.gtol) and self.gtol >= 0),
         ]
         for name, ok in checks:
             if not ok:
@@ -174,12 +174,8 @@ class DirectOptions:
         object.__setattr__(self, "total_mass", float(self.total_mass))
 
 
-def _is_number(v: Any) -> bool:
-    return isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, bool)
-
-
 def _is_int(v: Any) -> bool:
-    return _is_number(v) and float(v) == int(v)
+    return is_real_number(v) and float(v) == int(v)
 
 
 # --------------------------------------------------------------------------- the action

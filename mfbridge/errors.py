@@ -6,6 +6,10 @@ Every mistake a user can make in their input is reported as an :class:`InputErro
 
 from __future__ import annotations
 
+from typing import Any
+
+import numpy as np
+
 
 class MFBridgeError(Exception):
     """Base class of all errors raised by mfbridge."""
@@ -31,3 +35,9 @@ class MultipleBridgesWarning(UserWarning):
 def unknown_name(kind: str, name: str, valid: list[str] | tuple[str, ...]) -> InputError:
     """Error for an unknown option name, listing the valid ones."""
     return InputError(f"unknown {kind} {name!r}; valid names are: {', '.join(sorted(valid))}")
+
+
+def is_real_number(value: Any) -> bool:
+    """A finite real number given as int, float or a numpy scalar (not a bool, not a string)."""
+    return (isinstance(value, (int, float, np.integer, np.floating))
+            and not isinstance(value, bool) and bool(np.isfinite(value)))

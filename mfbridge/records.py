@@ -34,7 +34,7 @@ from importlib import metadata
 from pathlib import Path
 from typing import Any
 
-from mfbridge.errors import InputError
+from mfbridge.errors import InputError, is_real_number
 from mfbridge.result import RESULT_FILE, SUMMARY_FILE, _atomic_write
 
 log = logging.getLogger("mfbridge")
@@ -446,10 +446,6 @@ def flatten(config: Any, prefix: str = "") -> dict[str, Any]:
     return out
 
 
-def _is_number(value: Any) -> bool:
-    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
-
-
 def warm_differences(theirs: dict[str, Any], ours: dict[str, Any]
                      ) -> tuple[dict[str, list[Any]], str | None]:
     """The config entries in which a finished run (``theirs``) differs from a new one
@@ -465,7 +461,7 @@ def warm_differences(theirs: dict[str, Any], ours: dict[str, Any]
             continue
         if key in WARM_SAME_KEYS:
             return {}, f"{key} differs ({a.get(key)!r} there, {b.get(key)!r} here)"
-        if key not in a or key not in b or not (_is_number(a[key]) and _is_number(b[key])):
+        if key not in a or key not in b or not (is_real_number(a[key]) and is_real_number(b[key])):
             return {}, f"{key} differs ({a.get(key)!r} there, {b.get(key)!r} here)"
         differences[key] = [a[key], b[key]]
     return differences, None
@@ -477,7 +473,7 @@ def _sweep_values(sweep_dir: Path, configs: list[dict[str, Any]]) -> dict[str, l
     values: dict[str, list[float]] = {}
     for config in configs:
         for key, value in flatten(config).items():
-            if _is_number(value):
+            if is_real_number(value):
                 values.setdefault(key, []).append(float(value))
     multirun = sweep_dir / "multirun.yaml"
     if multirun.is_file():
