@@ -60,13 +60,13 @@ import numpy as np
 import scipy
 import scipy.optimize
 
-from mfbridge.endpoints import Gaussian
-from mfbridge.fixed_point import SolverOptions, solve_bridge
-from mfbridge.grid import Grid
-from mfbridge.linear_quadratic import lq_bridge
-from mfbridge.potentials import Harmonic, HarmonicInteraction
-from mfbridge.problem import BridgeProblem
-from mfbridge.reference import PairField
+from mfbridge.model.endpoints import Gaussian
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import Harmonic, HarmonicInteraction
+from mfbridge.model.problem import BridgeProblem
+from mfbridge.numerics.reference import PairField
+from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
+from mfbridge.solvers.linear_quadratic import lq_bridge
 
 # ----------------------------------------------------------------------------- settings
 

@@ -44,14 +44,14 @@ from typing import Any
 
 import numpy as np
 
-from mfbridge.endpoints import Gaussian
 from mfbridge.errors import ConvergenceWarning
-from mfbridge.fixed_point import SolverOptions, solve_bridge
-from mfbridge.grid import Grid
-from mfbridge.linear_quadratic import lq_bridge
-from mfbridge.potentials import GaussianCore, Harmonic, HarmonicInteraction
-from mfbridge.problem import BridgeProblem
+from mfbridge.model.endpoints import Gaussian
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import GaussianCore, Harmonic, HarmonicInteraction
+from mfbridge.model.problem import BridgeProblem
 from mfbridge.result import BridgeResult
+from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
+from mfbridge.solvers.linear_quadratic import lq_bridge
 
 # ----------------------------------------------------------------------------- settings
 
@@ -237,8 +237,8 @@ def source_digest() -> dict[str, str]:
     import mfbridge
 
     root = Path(mfbridge.__file__).parent
-    return {f.name: hashlib.sha256(f.read_bytes()).hexdigest()[:12]
-            for f in sorted(root.glob("*.py"))}
+    return {str(f.relative_to(root)): hashlib.sha256(f.read_bytes()).hexdigest()[:12]
+            for f in sorted(root.rglob("*.py"))}
 
 
 # ----------------------------------------------------------------------------- 2D (child)

@@ -24,13 +24,13 @@ import numpy as np
 import torch
 
 from mfbridge import lq_bridge
-from mfbridge.direct import DirectOptions, solve_direct
-from mfbridge.endpoints import Gaussian, GaussianMixture
-from mfbridge.fixed_point import SolverOptions, solve_bridge
-from mfbridge.grid import Grid
-from mfbridge.mobility import Exclusion
-from mfbridge.potentials import GaussianCore, Harmonic, HarmonicInteraction
-from mfbridge.problem import BridgeProblem
+from mfbridge.model.endpoints import Gaussian, GaussianMixture
+from mfbridge.model.grid import Grid
+from mfbridge.model.mobility import Exclusion
+from mfbridge.model.potentials import GaussianCore, Harmonic, HarmonicInteraction
+from mfbridge.model.problem import BridgeProblem
+from mfbridge.solvers.direct import DirectOptions, solve_direct
+from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
 
 OUT = Path(__file__).resolve().parent / "results"
 
@@ -144,7 +144,7 @@ def figures(results: dict, mass: float) -> None:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    from mfbridge.plotting import plot_result
+    from mfbridge.runs.plotting import plot_result
 
     for name, res in results.items():
         folder = OUT / f"bench_direct_{name}"

@@ -13,7 +13,7 @@ T = 1, box [-4, 4]^d, diagonal Gaussian endpoints):
 * 3D 32³, K = 50 and K = 100 with the same W;
 * 3D 32³, K = 50 with the harmonic attraction W = 1.5|z|²/2 (linear-quadratic), compared with
   the exact bridge (``lq_bridge``): with diagonal covariances the 3D problem is three 1D
-  problems, and the closed form is the one of ``mfbridge.linear_quadratic``.
+  problems, and the closed form is the one of ``mfbridge.solvers.linear_quadratic``.
 
 Every case runs alone in a fresh spawned process (one at a time: the big ones need GBs), once
 (no repeats). Reported: the solver's own ``timings["total"]`` (wall), outer and Sinkhorn
@@ -66,9 +66,9 @@ from bench_core import (  # the problems of the core benchmark
 )
 
 from mfbridge.errors import ConvergenceWarning
-from mfbridge.fixed_point import SolverOptions, solve_bridge
-from mfbridge.linear_quadratic import lq_bridge
-from mfbridge.propagator import CONTOUR_POINTS
+from mfbridge.numerics.propagator import CONTOUR_POINTS
+from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
+from mfbridge.solvers.linear_quadratic import lq_bridge
 
 # the third axis: a small offset and variances between those of the first two axes
 MEAN0_3D, COV0_3D = [*MEAN0_2D, 0.3], [*COV0_2D, 0.2]
@@ -154,7 +154,7 @@ def _run(case: tuple[str, str, int, int], figures: str | None) -> dict[str, Any]
     # the result file: save and load time, size on disk
     folder = Path(tempfile.mkdtemp(prefix="bench_scale_"))
     try:
-        from mfbridge.result import load
+        from mfbridge.runs.api import load
 
         t0 = time.perf_counter()
         result.save(folder)
@@ -167,7 +167,7 @@ def _run(case: tuple[str, str, int, int], figures: str | None) -> dict[str, Any]
     finally:
         shutil.rmtree(folder, ignore_errors=True)
     if figures is not None:
-        from mfbridge.plotting import plot_result
+        from mfbridge.runs.plotting import plot_result
 
         t0 = time.perf_counter()
         row["figures"] = [str(p) for p in plot_result(result, figures)]

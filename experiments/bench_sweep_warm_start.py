@@ -24,7 +24,8 @@ from typing import Any
 
 from study_common import ROOT, mfbridge
 
-from mfbridge import load, records
+from mfbridge import load
+from mfbridge.runs import records
 
 SWEEPS = {"coarse": (-2, -1, 0, 1, 2), "fine": (0.8, 0.9, 1.0, 1.1, 1.2)}
 MODES = ("none", "nearest")

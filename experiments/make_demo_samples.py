@@ -26,9 +26,9 @@ from pathlib import Path
 
 import numpy as np
 
-from mfbridge.grid import Grid
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import GaussianCore, TiltedDoubleWell
 from mfbridge.particles import PairForce, simulate
-from mfbridge.potentials import GaussianCore, TiltedDoubleWell
 
 OUT = Path(__file__).resolve().parent.parent / "examples" / "data"
 SEED = 20260

@@ -5,12 +5,18 @@ pair interaction W, noise σ), compute the most likely evolution between them �
 the large-deviation rate function of the empirical process — with its cost.
 
 Entry points: :func:`compose` and :func:`solve` (configs), :func:`solve_bridge` (objects),
-:func:`load` (saved results), :func:`lq_bridge` (exact linear–quadratic bridges).
-Importing the package imports neither Hydra nor matplotlib.
+:func:`load` (saved results), :func:`check` (particle check), :func:`lq_bridge` (exact
+linear–quadratic bridges). Importing the package imports neither Hydra nor matplotlib.
+
+Layout (imports go one way, left to right): :mod:`mfbridge.model` (what the user states) ←
+:mod:`mfbridge.numerics` (building blocks) ← :mod:`mfbridge.solvers` and
+:mod:`mfbridge.particles` ← :mod:`mfbridge.runs` (Hydra, command line, files, figures);
+:mod:`mfbridge.result` and :mod:`mfbridge.errors` sit at the root. The module paths used before
+this layout (``mfbridge.potentials``, ``mfbridge.fixed_point``, ``mfbridge.records``...) still
+import, as the same module objects (:mod:`mfbridge._moved`).
 """
 
-from mfbridge.api import build_problem, compose, solve
-from mfbridge.endpoints import Gaussian, GaussianMixture, UniformBox
+from mfbridge import _moved
 from mfbridge.errors import (
     ConvergenceWarning,
     InputError,
@@ -18,12 +24,15 @@ from mfbridge.errors import (
     MultipleBridgesWarning,
     PrecisionWarning,
 )
-from mfbridge.fixed_point import Iteration, SolverOptions, solve_bridge
-from mfbridge.grid import Grid
-from mfbridge.linear_quadratic import LQBridge, lq_bridge
-from mfbridge.particles import check
-from mfbridge.problem import BridgeProblem
-from mfbridge.result import BridgeResult, load
+from mfbridge.model.endpoints import Gaussian, GaussianMixture, UniformBox
+from mfbridge.model.grid import Grid
+from mfbridge.model.problem import BridgeProblem
+from mfbridge.result import BridgeResult
+from mfbridge.runs.api import build_problem, check, compose, load, solve
+from mfbridge.solvers.fixed_point import Iteration, SolverOptions, solve_bridge
+from mfbridge.solvers.linear_quadratic import LQBridge, lq_bridge
+
+_moved.install()
 
 __version__ = "0.1.0"
 

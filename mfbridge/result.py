@@ -3,6 +3,12 @@
 A run folder holds ``result.nc`` (netCDF, opened by ``xarray.open_dataset``) with every array
 labelled by its coordinates (``t``, ``x``/``x0``, ``x1``..., ``dim``), and ``summary.json`` with
 the scalar numbers a reader wants first (cost and its parts, convergence, timings, model).
+
+The format is written by :meth:`BridgeResult.save` and decoded by
+:meth:`BridgeResult.from_dataset`; reading a run folder (``mfbridge.load``,
+:func:`mfbridge.runs.api.load`) belongs to the runs layer, which also builds the grid. This
+module sits at the root of the package and imports nothing from its layers: a result's grid is
+any object with the :class:`GridLike` attributes.
 """
 
 from __future__ import annotations
@@ -12,12 +18,11 @@ import os
 import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 
 from mfbridge.errors import InputError
-from mfbridge.grid import Grid
 
 FORMAT_VERSION = 1
 UNITS = ("positions in the user's length unit (that of the grid box and of any data files), "
@@ -32,6 +37,27 @@ INTERPRETATION = (
 )
 RESULT_FILE = "result.nc"
 SUMMARY_FILE = "summary.json"
+
+
+class GridLike(Protocol):
+    """What a result needs of its grid (:class:`mfbridge.model.grid.Grid` has it): the box
+    corners ``lower``/``upper`` and ``shape`` (one entry per axis), the cell ``spacing``, the
+    cell centres per axis ``axes``, ``dim`` and the cell volume."""
+
+    @property
+    def dim(self) -> int: ...
+    @property
+    def shape(self) -> tuple[int, ...]: ...
+    @property
+    def lower(self) -> tuple[float, ...]: ...
+    @property
+    def upper(self) -> tuple[float, ...]: ...
+    @property
+    def spacing(self) -> tuple[float, ...]: ...
+    @property
+    def axes(self) -> tuple[np.ndarray, ...]: ...
+    @property
+    def cell_volume(self) -> float: ...
 
 
 @dataclass
@@ -78,7 +104,7 @@ class BridgeResult:
     * ``mean`` (K+1, d), ``cov`` (K+1, d, d), ``free_energy`` and ``entropy`` (K+1,).
     """
 
-    grid: Grid
+    grid: GridLike
     times: np.ndarray
     density: np.ndarray
     control: np.ndarray
@@ -234,6 +260,59 @@ class BridgeResult:
         _atomic_write(out / SUMMARY_FILE, lambda tmp: Path(tmp).write_text(text + "\n"))
         return out
 
+    @classmethod
+    def from_dataset(cls, ds: Any, summary: dict[str, Any], grid: GridLike) -> BridgeResult:
+        """Decode a dataset written by :meth:`to_dataset` (and ``result.nc``), with its
+        ``summary`` (from :func:`dataset_summary`) and the ``grid`` its ``summary["grid"]``
+        describes (the caller builds it: this module does not know the grid class). Raises
+        ``KeyError``/``TypeError``/``ValueError`` on a missing or malformed entry."""
+        history = []
+        hist_vars = [k for k in ds.data_vars if k.startswith("history_")]
+        if hist_vars:
+            for i in range(ds.sizes["iteration"]):
+                history.append({k[len("history_"):]: float(ds[k].values[i]) for k in hist_vars})
+        config = json.loads(ds.attrs.get("config", "null"))
+        # results written before multi-start solves have neither entry
+        densities = ds["alternative_density"].values if "alternative_density" in ds else None
+        alternatives = [
+            Alternative(start=a["start"], cost=a["cost"], status=a["status"],
+                        residual=a["residual"], distance=a["distance"], mean=np.asarray(a["mean"]),
+                        density=None if densities is None else densities[i])
+            for i, a in enumerate(summary.get("alternatives", []))
+        ]
+        return cls(
+            grid=grid,
+            times=ds["t"].values,
+            density=ds["density"].values,
+            control=ds["control"].values,
+            log_forward=ds["log_forward"].values,
+            log_backward=ds["log_backward"].values,
+            correction=ds["correction"].values,
+            mean=ds["mean"].values,
+            cov=ds["cov"].values,
+            free_energy=ds["free_energy"].values,
+            entropy=ds["entropy"].values,
+            cost=summary["cost"],
+            cost_kinetic=summary["cost_kinetic"],
+            cost_drift=summary["cost_drift"],
+            cost_free_energy=summary["cost_free_energy"],
+            noise=summary["noise"],
+            method=summary["method"],
+            route=summary["route"],
+            status=summary["status"],
+            message=summary["message"],
+            iterations=summary["iterations"],
+            residual=summary["residual"],
+            marginal_error=summary["marginal_error"],
+            history=history,
+            timings=summary["timings"],
+            model=summary["model"],
+            config=config,
+            coupling=ds["coupling"].values if "coupling" in ds else None,
+            alternatives=alternatives,
+            start=summary.get("start", ""),
+        )
+
 
 def _json_default(value: Any) -> Any:
     if isinstance(value, (np.floating, np.integer)):
@@ -262,82 +341,17 @@ def _atomic_write(target: Path, write: Any) -> None:
         raise
 
 
-def load(directory: str | os.PathLike[str]) -> BridgeResult:
-    """Read a result written by :meth:`BridgeResult.save` back into a :class:`BridgeResult`."""
-    import xarray as xr
-
-    folder = Path(directory)
-    path = folder / RESULT_FILE
-    if not folder.is_dir():
-        raise InputError(f"no run folder at {folder}")
-    if not path.is_file():
-        raise InputError(f"{folder} holds no {RESULT_FILE}: not a complete mfbridge result")
-    try:
-        with xr.open_dataset(path, engine="netcdf4") as ds:
-            ds = ds.load()
-    except Exception as exc:
-        raise InputError(f"cannot read {path}: {exc}") from exc
+def dataset_summary(ds: Any, source: str) -> dict[str, Any]:
+    """The summary record a dataset written by :meth:`BridgeResult.to_dataset` carries, checked
+    to be of this :data:`FORMAT_VERSION`; raises :class:`InputError` naming ``source`` (the
+    file) otherwise."""
     try:
         summary = json.loads(ds.attrs["summary"])
     except (KeyError, TypeError, ValueError) as exc:
-        raise InputError(f"{path} has no valid mfbridge summary: not an mfbridge result") from exc
+        raise InputError(f"{source} has no valid mfbridge summary: not an mfbridge result") from exc
     version = summary.get("format_version") if isinstance(summary, dict) else None
     if version != FORMAT_VERSION:
         raise InputError(
-            f"{path} has format version {version}, this mfbridge reads version {FORMAT_VERSION}"
+            f"{source} has format version {version}, this mfbridge reads version {FORMAT_VERSION}"
         )
-    try:
-        return _from_dataset(ds, summary)
-    except (KeyError, TypeError, ValueError) as exc:
-        raise InputError(f"{path} is not a complete mfbridge result: missing or bad {exc}") from exc
-
-
-def _from_dataset(ds: Any, summary: dict[str, Any]) -> BridgeResult:
-    g = summary["grid"]
-    grid = Grid(lower=tuple(g["lower"]), upper=tuple(g["upper"]), shape=tuple(g["shape"]))
-    history = []
-    hist_vars = [k for k in ds.data_vars if k.startswith("history_")]
-    if hist_vars:
-        for i in range(ds.sizes["iteration"]):
-            history.append({k[len("history_"):]: float(ds[k].values[i]) for k in hist_vars})
-    config = json.loads(ds.attrs.get("config", "null"))
-    # results written before multi-start solves have neither entry
-    densities = ds["alternative_density"].values if "alternative_density" in ds else None
-    alternatives = [
-        Alternative(start=a["start"], cost=a["cost"], status=a["status"],
-                    residual=a["residual"], distance=a["distance"], mean=np.asarray(a["mean"]),
-                    density=None if densities is None else densities[i])
-        for i, a in enumerate(summary.get("alternatives", []))
-    ]
-    return BridgeResult(
-        grid=grid,
-        times=ds["t"].values,
-        density=ds["density"].values,
-        control=ds["control"].values,
-        log_forward=ds["log_forward"].values,
-        log_backward=ds["log_backward"].values,
-        correction=ds["correction"].values,
-        mean=ds["mean"].values,
-        cov=ds["cov"].values,
-        free_energy=ds["free_energy"].values,
-        entropy=ds["entropy"].values,
-        cost=summary["cost"],
-        cost_kinetic=summary["cost_kinetic"],
-        cost_drift=summary["cost_drift"],
-        cost_free_energy=summary["cost_free_energy"],
-        noise=summary["noise"],
-        method=summary["method"],
-        route=summary["route"],
-        status=summary["status"],
-        message=summary["message"],
-        iterations=summary["iterations"],
-        residual=summary["residual"],
-        marginal_error=summary["marginal_error"],
-        history=history,
-        timings=summary["timings"],
-        model=summary["model"],
-        config=config,
-        coupling=ds["coupling"].values if "coupling" in ds else None,
-        alternatives=alternatives,
-        start=summary.get("start", ""),
-    )
+    return summary

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from mfbridge.anderson import AndersonMixer
+from mfbridge.numerics.anderson import AndersonMixer
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2])

@@ -3,8 +3,8 @@
 For U = a|x|^2/2 and W = kappa|x|^2/2 with Gaussian endpoints the bridge splits into a mean
 (linear-quadratic control) and a centred Ornstein-Uhlenbeck Schrödinger bridge with a closed form
 (Bunne, Hsieh, Cuturi & Krause, AISTATS 2023; Mallasto, Gerolin & Minh, Information Geometry
-2022); :mod:`mfbridge.linear_quadratic` implements it and is itself checked against POT and the
-Schrödinger-system factorisation in tests/test_linear_quadratic.py.
+2022); :mod:`mfbridge.solvers.linear_quadratic` implements it and is itself checked against POT
+and the Schrödinger-system factorisation in tests/test_linear_quadratic.py.
 
 Tolerances are twice the errors measured at the stated resolution (given beside each), and the
 refinement tests check the order of the scheme rather than a fixed number.
@@ -15,12 +15,12 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from mfbridge.endpoints import Gaussian
-from mfbridge.fixed_point import SolverOptions, solve_bridge
-from mfbridge.grid import Grid
-from mfbridge.linear_quadratic import lq_bridge
-from mfbridge.potentials import Harmonic, HarmonicInteraction
-from mfbridge.problem import BridgeProblem
+from mfbridge.model.endpoints import Gaussian
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import Harmonic, HarmonicInteraction
+from mfbridge.model.problem import BridgeProblem
+from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
+from mfbridge.solvers.linear_quadratic import lq_bridge
 
 M0, C0, M1, C1 = -1.0, 0.16, 1.2, 0.49  # N(-1, 0.4^2) -> N(1.2, 0.7^2)
 

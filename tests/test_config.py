@@ -17,9 +17,9 @@ from omegaconf import open_dict
 
 import mfbridge
 from mfbridge import BridgeProblem, Gaussian, Grid, InputError, SolverOptions, compose
-from mfbridge.api import CONF_DIR, GROUPS
-from mfbridge.direct import DirectOptions
-from mfbridge.potentials import Harmonic, HarmonicInteraction
+from mfbridge.model.potentials import Harmonic, HarmonicInteraction
+from mfbridge.runs.api import CONF_DIR, GROUPS
+from mfbridge.solvers.direct import DirectOptions
 
 
 def _options(group: str) -> list[str]:

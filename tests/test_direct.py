@@ -11,14 +11,14 @@ import pytest
 import torch
 
 from mfbridge import compose, lq_bridge, solve
-from mfbridge.direct import DirectAction, DirectOptions, solve_direct
-from mfbridge.endpoints import Gaussian, GaussianMixture
 from mfbridge.errors import InputError
-from mfbridge.fixed_point import SolverOptions, solve_bridge
-from mfbridge.grid import Grid
-from mfbridge.mobility import Exclusion, Walkers
-from mfbridge.potentials import GaussianCore, Harmonic, HarmonicInteraction, NoInteraction
-from mfbridge.problem import BridgeProblem
+from mfbridge.model.endpoints import Gaussian, GaussianMixture
+from mfbridge.model.grid import Grid
+from mfbridge.model.mobility import Exclusion, Walkers
+from mfbridge.model.potentials import GaussianCore, Harmonic, HarmonicInteraction, NoInteraction
+from mfbridge.model.problem import BridgeProblem
+from mfbridge.solvers.direct import DirectAction, DirectOptions, solve_direct
+from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
 from tests.test_limits import stationary_state
 
 torch.set_num_threads(1)
@@ -208,7 +208,7 @@ def test_2d_fluxes_satisfy_continuity_and_minimise_the_action():
 
 
 def test_2d_gradient_and_hessian_through_the_weighted_poisson_solve():
-    # the weighted Poisson solve has a hand-written backward (mfbridge.direct); central
+    # the weighted Poisson solve has a hand-written backward (mfbridge.solvers.direct); central
     # differences (Taylor: error O(eps^2)) check it; measured relative errors at eps = 1e-4:
     # gradient 2.5e-9, Hessian-vector product 6.8e-9 of its largest entry
     problem = _problem_2d(16, 3)

@@ -1,4 +1,5 @@
-"""Tests of mfbridge.endpoints: densities, cell masses, moments, input checks, Hydra configs."""
+"""Tests of mfbridge.model.endpoints: densities, cell masses, moments, input checks, Hydra
+configs."""
 
 from __future__ import annotations
 
@@ -11,7 +12,8 @@ from hydra.utils import instantiate
 from omegaconf import OmegaConf
 from scipy import integrate, stats
 
-from mfbridge.endpoints import (
+from mfbridge.errors import InputError
+from mfbridge.model.endpoints import (
     Endpoint,
     Gaussian,
     GaussianMixture,
@@ -19,8 +21,7 @@ from mfbridge.endpoints import (
     check_masses,
     endpoint_masses,
 )
-from mfbridge.errors import InputError
-from mfbridge.grid import Grid
+from mfbridge.model.grid import Grid
 
 CONF = Path(__file__).resolve().parents[1] / "conf"
 # self-contained endpoint files; files with a defaults list (e.g. from_samples, which also picks

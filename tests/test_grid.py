@@ -1,4 +1,5 @@
-"""Tests of mfbridge.grid: cell centres, spacing, volume, points, validation, Hydra configs."""
+"""Tests of mfbridge.model.grid: cell centres, spacing, volume, points, validation, Hydra
+configs."""
 
 from __future__ import annotations
 
@@ -11,13 +12,13 @@ from hydra.utils import instantiate
 from omegaconf import OmegaConf
 
 from mfbridge.errors import InputError
-from mfbridge.grid import Grid
+from mfbridge.model.grid import Grid
 
 CONF = Path(__file__).resolve().parents[1] / "conf"
 # explicit boxes; options computed from other groups (e.g. span, fitted to the endpoints) are
 # composed through the primary config in tests/test_config.py and tests/test_samples.py
 GRID_FILES = sorted(p for p in (CONF / "grid").glob("*.yaml")
-                    if "_target_: mfbridge.grid.Grid" in p.read_text())
+                    if "_target_: mfbridge.model.grid.Grid" in p.read_text())
 
 
 def test_1d_scalar_arguments() -> None:

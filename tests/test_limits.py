@@ -6,14 +6,14 @@ import numpy as np
 import ot
 import pytest
 
-from mfbridge import observables
-from mfbridge.endpoints import Gaussian, GaussianMixture
 from mfbridge.errors import PrecisionWarning
-from mfbridge.fixed_point import solve_bridge
-from mfbridge.grid import Grid
-from mfbridge.potentials import GaussianCore, Harmonic
-from mfbridge.problem import BridgeProblem
-from mfbridge.reference import PairField
+from mfbridge.model.endpoints import Gaussian, GaussianMixture
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import GaussianCore, Harmonic
+from mfbridge.model.problem import BridgeProblem
+from mfbridge.numerics import observables
+from mfbridge.numerics.reference import PairField
+from mfbridge.solvers.fixed_point import solve_bridge
 
 
 def quantile_function(p: np.ndarray, grid: Grid, u: np.ndarray) -> np.ndarray:

@@ -17,7 +17,7 @@ import scipy.optimize
 import scipy.stats
 
 from mfbridge.errors import InputError
-from mfbridge.linear_quadratic import LQBridge, lq_bridge
+from mfbridge.solvers.linear_quadratic import LQBridge, lq_bridge
 
 S0_2D = np.array([[1.0, 0.5], [0.5, 0.8]])
 S1_2D = np.array([[0.6, -0.3], [-0.3, 1.4]])

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from mfbridge.errors import InputError
-from mfbridge.mobility import (
+from mfbridge.model.mobility import (
     EnergyExchange,
     Exclusion,
     UserMobility,

@@ -9,14 +9,15 @@ from dataclasses import dataclass
 import numpy as np
 import pytest
 
-from mfbridge import multistart
-from mfbridge.endpoints import Gaussian
 from mfbridge.errors import InputError, MultipleBridgesWarning
-from mfbridge.fixed_point import SolverOptions, solve_bridge
-from mfbridge.grid import Grid
-from mfbridge.potentials import Confinement, HarmonicInteraction
-from mfbridge.problem import BridgeProblem
-from mfbridge.result import SUMMARY_FILE, Alternative, load
+from mfbridge.model.endpoints import Gaussian
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import Confinement, HarmonicInteraction
+from mfbridge.model.problem import BridgeProblem
+from mfbridge.result import SUMMARY_FILE, Alternative
+from mfbridge.runs.api import load
+from mfbridge.solvers import multistart
+from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
 
 from .test_robustness import lq_problem
 
@@ -91,7 +92,7 @@ def test_swarm_passes_the_obstacle_on_either_side(tmp_path):
 def test_convex_case_has_one_bridge():
     # Linear-quadratic family: J splits exactly into a strictly convex quadratic in the mean
     # path and a classical Schrödinger bridge of the centred part (strictly convex in the path
-    # law), so the bridge is unique (split: mfbridge/linear_quadratic.py; closed form of the
+    # law), so the bridge is unique (split: mfbridge/solvers/linear_quadratic.py; closed form of the
     # centred part: Mallasto, Gerolin & Minh, Information Geometry 2022; Bunne, Hsieh, Cuturi &
     # Krause, AISTATS 2023). Every start must reach it: measured max L1 distance to the cold
     # start's flow 1.1e-10 (tol 1e-9), so 1e-8 below.

@@ -17,12 +17,12 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from mfbridge.endpoints import Gaussian, GaussianMixture
-from mfbridge.fixed_point import SolverOptions, solve_bridge
-from mfbridge.grid import Grid
-from mfbridge.potentials import GaussianCore, Harmonic, HarmonicInteraction
-from mfbridge.problem import BridgeProblem
-from mfbridge.reference import PairField
+from mfbridge.model.endpoints import Gaussian, GaussianMixture
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import GaussianCore, Harmonic, HarmonicInteraction
+from mfbridge.model.problem import BridgeProblem
+from mfbridge.numerics.reference import PairField
+from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
 
 NOISE = 1.0
 GRID = Grid(-5.0, 5.0, 256)

@@ -1,4 +1,4 @@
-"""Tests of the particle checker (mfbridge.particles, mfbridge.commands.check).
+"""Tests of the particle checker (mfbridge.particles, mfbridge.runs.commands.check).
 
 Each check compares with something outside the project: a closed form, a theorem (law of large
 numbers for McKean–Vlasov systems, central limit theorem, Girsanov), scipy or POT. Tolerances
@@ -21,10 +21,11 @@ import scipy.stats
 import xarray as xr
 
 import mfbridge
-from mfbridge import particles as P
 from mfbridge.errors import InputError
-from mfbridge.grid import Grid
-from mfbridge.potentials import GaussianCore, Harmonic, HarmonicInteraction, NoInteraction
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import GaussianCore, Harmonic, HarmonicInteraction, NoInteraction
+from mfbridge.particles import simulator as S
+from mfbridge.particles import statistics as P
 
 # The linear–quadratic case of the project (README "Accuracy"), on a coarser grid for speed.
 LQ = dict(stiffness=1.0, strength=1.5, noise=1.0, horizon=1.0,
@@ -113,7 +114,7 @@ def test_w1_2d_translation() -> None:
     # transport is a translation, W1 = |(i h0, j h1)| (common practice, no source)
     grid = Grid([-1.0, -1.0], [1.0, 1.0], [20, 20])
     rng = np.random.default_rng(2)
-    x = P.sample_particles(grid, np.pad(np.ones((6, 6)), 7) / 36, 400, rng)
+    x = S.sample_particles(grid, np.pad(np.ones((6, 6)), 7) / 36, 400, rng)
     hist = np.bincount(P._stencil_nearest(grid, x), minlength=grid.size).reshape(20, 20) / 400
     assert P.w1_to_masses(grid, x, hist) == pytest.approx(0.0, abs=1e-8)  # simplex rounding
     moved = x + np.array([3 * 0.1, -2 * 0.1])
@@ -125,7 +126,7 @@ def test_sampling_follows_the_masses() -> None:
     grid = Grid(-3.0, 3.0, 30)
     masses = np.exp(-0.5 * (grid.axes[0] - 0.5) ** 2) * (1 + np.sin(3 * grid.axes[0]) ** 2)
     masses /= masses.sum()
-    x = P.sample_particles(grid, masses, 20_000, rng)[:, 0]
+    x = S.sample_particles(grid, masses, 20_000, rng)[:, 0]
     cdf = np.concatenate([[0.0], np.cumsum(masses)])
     # Kolmogorov–Smirnov test against the piecewise-linear CDF (scipy.stats.kstest); with the
     # seed fixed the p-value is 0.47 (a wrong sampler, centres only, gives p < 1e-30)
@@ -138,7 +139,7 @@ def test_sampling_follows_the_masses() -> None:
     grid2 = Grid([-1.0, -1.0], [1.0, 1.0], [8, 8])
     m2 = rng.random((8, 8)) + 0.2
     m2 /= m2.sum()
-    y = P.sample_particles(grid2, m2, 20_000, rng)
+    y = S.sample_particles(grid2, m2, 20_000, rng)
     counts = np.bincount(P._stencil_nearest(grid2, y), minlength=64)
     assert scipy.stats.chisquare(counts, 20_000 * m2.ravel()).pvalue > 1e-3
     assert np.all(grid2.contains(y))
@@ -156,7 +157,7 @@ def test_interpolation_reproduces_linear_fields() -> None:
     hi = np.array([a[-1] for a in grid.axes])
     x = lo + (hi - lo) * rng.random((200, 2))
     want = np.stack([1.0 + 2.0 * x[:, 0] - x[:, 1], 0.5 * x[:, 1] + 3.0 * x[:, 0]], axis=1)
-    np.testing.assert_allclose(P.interpolate_field(grid, field, x), want, atol=1e-12)
+    np.testing.assert_allclose(S.interpolate_field(grid, field, x), want, atol=1e-12)
 
 
 @pytest.mark.parametrize("dim", [1, 2])
@@ -167,18 +168,18 @@ def test_pair_forces_against_direct_sums(dim: int) -> None:
     for w in (GaussianCore(1.3, 0.6), HarmonicInteraction(-0.7)):
         # direct double loop over all pairs, (1/N) sum_j grad W(x_i - x_j)
         direct = np.array([sum(w.grad(xi - xj) for xj in x) for xi in x]) / len(x)
-        exact = P.PairForce(w, grid, "exact", block=7)(x)
+        exact = S.PairForce(w, grid, "exact", block=7)(x)
         np.testing.assert_allclose(exact, direct, atol=1e-13)
     # grid mode: cloud-in-cell + FFT; force error O(h²): measured max error 2.3e-4 (1D,
     # h = 0.025) and 1.2e-3 (2D, h = 0.0625), both ~0.8 (h/range)², well under the bound 2 (h/r)²
     w = GaussianCore(1.3, 0.6)
-    exact = P.PairForce(w, grid, "exact")(x)
-    approx = P.PairForce(w, grid, "grid")(x)
+    exact = S.PairForce(w, grid, "exact")(x)
+    approx = S.PairForce(w, grid, "grid")(x)
     h = grid.spacing[0]
     assert np.max(np.abs(approx - exact)) < 2.0 * (h / 0.6) ** 2 * np.max(np.abs(exact))
     # and the error falls as h² (ratio 4 expected on halving h; accept 3 to 5.5)
     coarse = Grid([-3.0] * dim, [3.0] * dim, [120] if dim == 1 else [48, 48])
-    err_coarse = np.max(np.abs(P.PairForce(w, coarse, "grid")(x) - exact))
+    err_coarse = np.max(np.abs(S.PairForce(w, coarse, "grid")(x) - exact))
     err_fine = np.max(np.abs(approx - exact))
     assert 3.0 < err_coarse / err_fine < 5.5
 
@@ -190,7 +191,7 @@ def _lq_free_errors(cells: int, steps: int) -> tuple[float, float, np.ndarray, G
     x = grid.axes[0]
     p0 = np.exp(-0.5 * (x + 1.0) ** 2 / 0.16)
     p0 /= p0.sum()
-    flow = P.mckean_vlasov_flow(grid, Harmonic(a), HarmonicInteraction(kappa), sigma, p0, times)
+    flow = S.mckean_vlasov_flow(grid, Harmonic(a), HarmonicInteraction(kappa), sigma, p0, times)
     th = a + kappa
     m_exact = -np.exp(-a * times)
     v_exact = 0.16 * np.exp(-2 * th * times) + sigma**2 * (1 - np.exp(-2 * th * times)) / (2 * th)
@@ -213,7 +214,7 @@ def test_mckean_vlasov_flow_linear_gaussian() -> None:
     m_fine, v_fine, _, _ = _lq_free_errors(512, 100)
     assert m_err / m_fine > 3.0 and v_err / v_fine > 3.0
     # the interaction matters: without it the variance relaxes at rate a, not a + κ
-    free = P.mckean_vlasov_flow(grid, Harmonic(1.0), NoInteraction(), 1.0, flow[0],
+    free = S.mckean_vlasov_flow(grid, Harmonic(1.0), NoInteraction(), 1.0, flow[0],
                                 np.linspace(0.0, 1.0, 51))
     v_exact = 0.16 * np.exp(-5.0) + (1 - np.exp(-5.0)) / 5.0
     assert abs(P.moments_of_masses(grid, free[-1])[1][0, 0] - v_exact) > 100 * v_err
@@ -231,16 +232,16 @@ def test_uncontrolled_particles_follow_mckean_vlasov() -> None:
     x = grid.axes[0]
     p0 = np.exp(-0.5 * (x + 1.0) ** 2 / 0.1)
     p0 /= p0.sum()
-    from mfbridge.potentials import DoubleWell
+    from mfbridge.model.potentials import DoubleWell
 
     conf, inter, noise = DoubleWell(1.0, 1.0), GaussianCore(1.5, 0.5), 0.8
-    flow = P.mckean_vlasov_flow(grid, conf, inter, noise, p0, times)
+    flow = S.mckean_vlasov_flow(grid, conf, inter, noise, p0, times)
     n = 2000
     w1 = []
     for seed in range(3):
         rng = np.random.default_rng([seed, n])
-        x0 = P.sample_particles(grid, p0, n, rng)
-        run = P.simulate(grid, times, noise, conf, P.PairForce(inter, grid, "exact"), x0, rng,
+        x0 = S.sample_particles(grid, p0, n, rng)
+        run = S.simulate(grid, times, noise, conf, S.PairForce(inter, grid, "exact"), x0, rng,
                          substeps=2, record=[50])
         w1.append(P.w1_to_masses(grid, run.positions[-1], flow[-1]))
     # Bound: 2 × the expected W1 of N i.i.d. points from the limit law (Bobkov & Ledoux 2019,
@@ -252,7 +253,7 @@ def test_uncontrolled_particles_follow_mckean_vlasov() -> None:
     bound = 2.0 * iid + 2e-3
     assert np.mean(w1) < bound
     # it can fail: the same particles against the flow without the interaction
-    free = P.mckean_vlasov_flow(grid, conf, NoInteraction(), noise, p0, times)
+    free = S.mckean_vlasov_flow(grid, conf, NoInteraction(), noise, p0, times)
     assert P.w1_to_masses(grid, run.positions[-1], free[-1]) > 2 * bound
 
 
@@ -332,7 +333,7 @@ def tiny_run(tmp_path_factory: pytest.TempPathFactory,
 
 def test_command_writes_json_and_figures(tiny_run: Path, capsys: pytest.CaptureFixture[str]
                                          ) -> None:
-    from mfbridge.commands.check import main
+    from mfbridge.runs.commands.check import main
 
     argv = [str(tiny_run), "--particles", "100", "200", "--seed", "3", "4"]
     assert main(argv) == 0
@@ -348,7 +349,7 @@ def test_command_writes_json_and_figures(tiny_run: Path, capsys: pytest.CaptureF
 
 def test_command_refuses_bad_folders(tmp_path: Path, tiny_run: Path,
                                      capsys: pytest.CaptureFixture[str]) -> None:
-    from mfbridge.commands.check import main
+    from mfbridge.runs.commands.check import main
 
     assert main([str(tmp_path / "nowhere")]) == 2
     assert "no run folder" in capsys.readouterr().err

@@ -1,4 +1,5 @@
-"""Tests of mfbridge.potentials: gradients, evenness, closed forms, torch autograd, registries."""
+"""Tests of mfbridge.model.potentials: gradients, evenness, closed forms, torch autograd,
+registries."""
 
 from __future__ import annotations
 
@@ -13,8 +14,8 @@ from hydra.utils import instantiate
 from omegaconf import OmegaConf
 
 from mfbridge.errors import InputError
-from mfbridge.grid import Grid
-from mfbridge.potentials import (
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import (
     Confinement,
     DoubleWell,
     GaussianCore,

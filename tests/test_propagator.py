@@ -6,9 +6,14 @@ import numpy as np
 import pytest
 import scipy.linalg
 
-from mfbridge.grid import Grid
-from mfbridge.propagator import CONTOUR_POINTS, UNIFORMISATION_TAIL, StepOperator, scalar_exp
-from mfbridge.reference import EdgeRates, bernoulli, bernoulli_derivative, edge_rates
+from mfbridge.model.grid import Grid
+from mfbridge.numerics.propagator import (
+    CONTOUR_POINTS,
+    UNIFORMISATION_TAIL,
+    StepOperator,
+    scalar_exp,
+)
+from mfbridge.numerics.reference import EdgeRates, bernoulli, bernoulli_derivative, edge_rates
 
 
 def dense_generator(rates: EdgeRates, shape: tuple[int, ...]) -> np.ndarray:

@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from mfbridge.grid import Grid
-from mfbridge.potentials import GaussianCore, HarmonicInteraction, Morse, SoftCoulomb
-from mfbridge.reference import PairField
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import GaussianCore, HarmonicInteraction, Morse, SoftCoulomb
+from mfbridge.numerics.reference import PairField
 
 
 @pytest.mark.parametrize("interaction", [GaussianCore(1.0, 0.4), SoftCoulomb(1.0, 0.2),

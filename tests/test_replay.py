@@ -14,10 +14,11 @@ import pytest
 import xarray as xr
 
 import mfbridge
-from mfbridge import InputError, compose, records
-from mfbridge.cli import run
-from mfbridge.commands import replay
+from mfbridge import InputError, compose
 from mfbridge.result import RESULT_FILE
+from mfbridge.runs import records
+from mfbridge.runs.cli import run
+from mfbridge.runs.commands import replay
 
 CONSOLE_SCRIPT = Path(sys.executable).with_name("mfbridge")
 SMALL = ("grid.shape=32", "steps=8", "figures=false")

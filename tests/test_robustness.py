@@ -6,16 +6,17 @@ import mpmath
 import numpy as np
 import pytest
 
-from mfbridge import lq_bridge, observables
-from mfbridge.endpoints import Gaussian
-from mfbridge.entropic import UnderflowError
+from mfbridge import lq_bridge
 from mfbridge.errors import ConvergenceWarning, PrecisionWarning
-from mfbridge.fixed_point import SolverOptions, solve_bridge
-from mfbridge.grid import Grid
-from mfbridge.potentials import DoubleWell, Harmonic, HarmonicInteraction
-from mfbridge.problem import BridgeProblem
-from mfbridge.propagator import StepOperator
-from mfbridge.reference import PairField, edge_rates
+from mfbridge.model.endpoints import Gaussian
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import DoubleWell, Harmonic, HarmonicInteraction
+from mfbridge.model.problem import BridgeProblem
+from mfbridge.numerics import observables
+from mfbridge.numerics.entropic import UnderflowError
+from mfbridge.numerics.propagator import StepOperator
+from mfbridge.numerics.reference import PairField, edge_rates
+from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
 
 from .test_propagator import dense_generator
 
@@ -149,7 +150,7 @@ def test_failure_at_small_noise_on_a_coarse_grid_says_to_refine():
 def test_small_noise_linear_quadratic_bridge_converges_at_second_order_in_time():
     # sigma = 0.1: the kernel spans e^{-Delta x^2 / (2 sigma^2 T)} far below double precision, so
     # the solver moves to log-domain steps by itself, and converges from a cold start (25-33
-    # outer iterations). Linear-quadratic case, exact answer from mfbridge.linear_quadratic
+    # outer iterations). Linear-quadratic case, exact answer from mfbridge.solvers.linear_quadratic
     # (Mallasto, Gerolin & Minh 2022; Bunne et al. 2023). 512 cells on [-1.6, 1.8] keep the cell
     # Péclet number near 1. Measured J(K) for K = 10, 20, 40: 38.200413, 37.828323, 37.734996:
     # successive differences shrink 3.99-fold (second order in time); the extrapolated

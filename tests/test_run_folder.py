@@ -19,8 +19,8 @@ from omegaconf import OmegaConf
 
 import mfbridge
 from mfbridge import BridgeResult, ConvergenceWarning, InputError, compose
-from mfbridge.cli import run
 from mfbridge.result import FORMAT_VERSION, RESULT_FILE, SUMMARY_FILE
+from mfbridge.runs.cli import run
 
 FIGURES = ("density.png", "moments.png", "convergence.png")
 CONSOLE_SCRIPT = Path(sys.executable).with_name("mfbridge")
@@ -183,7 +183,7 @@ def test_load_round_trips_exactly_2d(solved_2d: Solved) -> None:
 
 
 def test_saved_result_can_be_plotted_again(solved_2d: Solved, tmp_path: Path) -> None:
-    from mfbridge.plotting import plot_result
+    from mfbridge.runs.plotting import plot_result
 
     paths = plot_result(mfbridge.load(solved_2d.folder), tmp_path)
     assert sorted(p.name for p in paths) == sorted(FIGURES)
@@ -410,7 +410,8 @@ def test_console_script_unknown_option(console: dict[str, Console]) -> None:
     run_ = console["unknown_option"]
     assert run_.returncode != 0
     assert "interaction/nope" in run_.output
-    for option in sorted(p.stem for p in (mfbridge.api.CONF_DIR / "interaction").glob("*.yaml")):
+    options = (mfbridge.runs.api.CONF_DIR / "interaction").glob("*.yaml")
+    for option in sorted(p.stem for p in options):
         assert option in run_.output
     assert not (run_.folder / RESULT_FILE).exists()
 

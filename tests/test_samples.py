@@ -1,4 +1,4 @@
-"""Endpoints from files of measured positions (mfbridge.samples): densities, boxes, units, and
+"""Endpoints from files of measured positions (mfbridge.model.samples): densities, boxes, units, and
 a clear InputError for every malformed input."""
 
 from __future__ import annotations
@@ -20,10 +20,10 @@ from scipy.stats import gaussian_kde
 
 import mfbridge
 from mfbridge import BridgeProblem, Grid, InputError, compose
-from mfbridge.api import noise_from_config
-from mfbridge.endpoints import Gaussian
-from mfbridge.entropic import UnderflowError
-from mfbridge.samples import REPO_ROOT, Samples, auto_grid, box_from_samples
+from mfbridge.model.endpoints import Gaussian
+from mfbridge.model.samples import REPO_ROOT, Samples, auto_grid, box_from_samples
+from mfbridge.numerics.entropic import UnderflowError
+from mfbridge.runs.api import noise_from_config
 
 DEMO_CSV = REPO_ROOT / "examples" / "data" / "chemotaxis_start.csv"
 DEMO_NPZ = REPO_ROOT / "examples" / "data" / "chemotaxis_end.npz"

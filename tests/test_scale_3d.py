@@ -4,8 +4,8 @@ The reference is the exact linear-quadratic mean-field bridge (U = a|x|^2/2, W =
 Gaussian endpoints): the mean follows a linear-quadratic control problem and the centred part is
 an Ornstein-Uhlenbeck Schrödinger bridge with a closed form (Bunne, Hsieh, Cuturi & Krause,
 AISTATS 2023; Mallasto, Gerolin & Minh, Information Geometry 2022), implemented in
-:mod:`mfbridge.linear_quadratic`. With diagonal covariances every part of that closed form is
-diagonal, so the 3D bridge is three independent 1D bridges, one per axis.
+:mod:`mfbridge.solvers.linear_quadratic`. With diagonal covariances every part of that closed form
+is diagonal, so the 3D bridge is three independent 1D bridges, one per axis.
 """
 
 from __future__ import annotations
@@ -19,14 +19,14 @@ from scipy.stats import norm
 
 import mfbridge
 from mfbridge import compose
-from mfbridge.cli import run
-from mfbridge.endpoints import Gaussian
-from mfbridge.fixed_point import SolverOptions, solve_bridge
-from mfbridge.grid import Grid
-from mfbridge.linear_quadratic import lq_bridge
-from mfbridge.potentials import Harmonic, HarmonicInteraction
-from mfbridge.problem import BridgeProblem
+from mfbridge.model.endpoints import Gaussian
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import Harmonic, HarmonicInteraction
+from mfbridge.model.problem import BridgeProblem
 from mfbridge.result import RESULT_FILE, BridgeResult
+from mfbridge.runs.cli import run
+from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
+from mfbridge.solvers.linear_quadratic import lq_bridge
 from tests.test_run_folder import PNG_MAGIC, _assert_same_result
 
 M0, C0 = [-0.6, 0.3, 0.2], [0.16, 0.25, 0.2]
@@ -117,7 +117,7 @@ def test_3d_save_load_round_trip(solved_3d: BridgeResult, tmp_path: Path) -> Non
 
 
 def test_3d_figures(solved_3d: BridgeResult, tmp_path: Path) -> None:
-    from mfbridge.plotting import plot_result
+    from mfbridge.runs.plotting import plot_result
 
     paths = plot_result(solved_3d, tmp_path)
     assert sorted(p.name for p in paths) == sorted(FIGURES_3D)
@@ -138,7 +138,7 @@ def test_cli_run_3d(tmp_path: Path) -> None:
 
 
 def test_sweep_density_panels_accept_3d(solved_3d: BridgeResult, tmp_path: Path) -> None:
-    from mfbridge.commands.collect import Row, plot_densities
+    from mfbridge.runs.commands.collect import Row, plot_densities
 
     row = Row(run="a", params={}, status="converged", folder=tmp_path)
     path = plot_densities(tmp_path / "densities.png", [], [row], [solved_3d])

@@ -15,10 +15,11 @@ import pytest
 import xarray as xr
 
 import mfbridge
-from mfbridge import InputError, records
-from mfbridge.cli import run
-from mfbridge.commands import collect, replay
+from mfbridge import InputError
 from mfbridge.result import RESULT_FILE, SUMMARY_FILE
+from mfbridge.runs import records
+from mfbridge.runs.cli import run
+from mfbridge.runs.commands import collect, replay
 
 CONSOLE_SCRIPT = Path(sys.executable).with_name("mfbridge")
 SMALL = ["grid.shape=32", "steps=8", "figures=false"]

@@ -1,11 +1,11 @@
 r"""Exact-in-time propagation of the reference chain: the action of :math:`e^{\tau Q}` on vectors.
 
-Over one time step the generator :math:`Q` of :mod:`mfbridge.reference` is frozen, and the step
-operator is the matrix exponential :math:`M = e^{\tau Q}` (a stochastic matrix). Its action is
-never formed densely. Because the chain is reversible, the spectrum of :math:`\tau Q` lies in
-:math:`(-\infty, 0]`, where the exponential is approximated uniformly by the trapezoid rule on
-Talbot's cotangent contour (Trefethen, Weideman & Schmelzer, "Talbot quadratures and rational
-approximations", BIT 46, 2006):
+Over one time step the generator :math:`Q` of :mod:`mfbridge.numerics.reference` is frozen, and
+the step operator is the matrix exponential :math:`M = e^{\tau Q}` (a stochastic matrix). Its
+action is never formed densely. Because the chain is reversible, the spectrum of :math:`\tau Q`
+lies in :math:`(-\infty, 0]`, where the exponential is approximated uniformly by the trapezoid
+rule on Talbot's cotangent contour (Trefethen, Weideman & Schmelzer, "Talbot quadratures and
+rational approximations", BIT 46, 2006):
 
 .. math::
 
@@ -37,7 +37,7 @@ import numpy as np
 from scipy import special
 from scipy.linalg import lapack
 
-from mfbridge.reference import EdgeRates
+from mfbridge.numerics.reference import EdgeRates
 
 
 def _talbot_contour(n_points: int) -> tuple[np.ndarray, np.ndarray]:

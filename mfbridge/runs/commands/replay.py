@@ -85,7 +85,7 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def _version_warnings(recorded: dict[str, str | None]) -> list[str]:
-    from mfbridge.records import package_versions
+    from mfbridge.runs.records import package_versions
 
     current = package_versions()
     return [f"{name} {recorded.get(name)} in the record, {current.get(name)} now"
@@ -95,7 +95,7 @@ def _version_warnings(recorded: dict[str, str | None]) -> list[str]:
 
 def _recorded_warm_start(warm: dict[str, Any] | None) -> str:
     """The ``warm_start`` config value that repeats the recorded start, printing what it does."""
-    from mfbridge import records
+    from mfbridge.runs import records
     from mfbridge.result import RESULT_FILE
 
     path = (warm or {}).get("path")
@@ -118,9 +118,9 @@ def replay(run_dir: Path, out: Path | None, tol: float, figures: bool) -> int:
     """Replay ``run_dir`` into ``out``; print the comparison and verdict; return the exit code."""
     from omegaconf import OmegaConf
 
-    from mfbridge import records
-    from mfbridge.cli import run
-    from mfbridge.result import load
+    from mfbridge.runs import records
+    from mfbridge.runs.cli import run
+    from mfbridge.runs.api import load
 
     if not tol >= 0:
         raise InputError(f"--tol must be a non-negative number, got {tol}")

@@ -1,7 +1,7 @@
 """Run records: what a run folder says about how its result was made, and whether it is complete.
 
 Besides the result (``result.nc``, ``summary.json``, see :mod:`mfbridge.result`), a run folder
-written by :func:`mfbridge.cli.run` holds
+written by :func:`mfbridge.runs.cli.run` holds
 
 * ``record.json``: the resolved configuration, the command-line overrides and config-group
   choices (when run through Hydra), versions of Python and the numerical packages, the git
@@ -413,7 +413,7 @@ WARM_IGNORED_KEYS = frozenset({"figures", "warm_start"})
 #: Numeric entries that must be equal: the warm start lives on the same grid and time steps.
 WARM_SAME_KEYS = frozenset({"grid.shape", "steps"})
 #: The solver options that accept a warm start (the fixed-point solver).
-WARM_SOLVER = "mfbridge.fixed_point.SolverOptions"
+WARM_SOLVER = "mfbridge.solvers.fixed_point.SolverOptions"
 
 
 @dataclass(frozen=True)

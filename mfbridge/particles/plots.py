@@ -17,7 +17,7 @@ from typing import Any
 
 import numpy as np
 
-from mfbridge.particles import CheckReport
+from mfbridge.particles.statistics import CheckReport
 
 
 def _save(fig: Any, path: Path, writer: Callable[[Path, Callable[[str], None]], None] | None

@@ -33,7 +33,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from mfbridge.errors import InputError
-from mfbridge.potentials import resolve_callable
+from mfbridge.model.potentials import resolve_callable
 
 __all__ = [
     "EnergyExchange",
@@ -235,7 +235,7 @@ class ZeroRange(Mobility):
 
     name: ClassVar[str] = "zero_range"
 
-    def __init__(self, rate: Callable[[Any], Any] | str = "mfbridge.mobility:saturating_rate"
+    def __init__(self, rate: Callable[[Any], Any] | str = "mfbridge.model.mobility:saturating_rate"
                  ) -> None:
         self.rate_name = rate if isinstance(rate, str) else (
             f"{getattr(rate, '__module__', '?')}:{getattr(rate, '__qualname__', repr(rate))}")

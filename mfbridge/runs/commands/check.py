@@ -25,26 +25,6 @@ CHECK_FILE = "check.json"
 FIGURES = ("check_histograms.png", "check_clouds.png", "check_convergence.png")
 
 
-def model_from_config(config: dict[str, Any]) -> tuple[Any, Any]:
-    """The confinement and interaction of a resolved run config (``_target_`` entries),
-    instantiated by Hydra (imported here, lazily)."""
-    from hydra.utils import instantiate
-    from omegaconf import OmegaConf
-
-    built = []
-    for group in ("confinement", "interaction"):
-        if not isinstance(config, dict) or group not in config:
-            raise InputError(f"the run's config has no {group!r} entry: cannot rebuild the model")
-        try:
-            built.append(instantiate(OmegaConf.create(config[group])))
-        except InputError:
-            raise
-        except Exception as exc:
-            cause = exc.__cause__ or exc
-            raise InputError(f"cannot rebuild the {group} of the run: {cause}") from exc
-    return built[0], built[1]
-
-
 def _parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="mfbridge check",
@@ -102,7 +82,7 @@ def main(argv: list[str] | None = None) -> int:
 
 def _main(args: argparse.Namespace) -> int:
     from mfbridge.particles import check
-    from mfbridge.result import load
+    from mfbridge.runs.api import load, model_from_config
 
     folder = Path(args.run_dir)
     result = load(folder)
@@ -119,7 +99,7 @@ def _main(args: argparse.Namespace) -> int:
     _atomic_write(folder / CHECK_FILE, lambda tmp: Path(tmp).write_text(text + "\n"))
     print(f"wrote {folder / CHECK_FILE}")
     if not args.no_figures:
-        from mfbridge.check_plots import plot_check
+        from mfbridge.particles.plots import plot_check
 
         for path in plot_check(report, folder, writer=_atomic_write):
             print(f"figure: {path}")

@@ -1,7 +1,7 @@
 r"""The entropic sub-problem: a classical Schrödinger bridge for a frozen reference.
 
 With the interaction frozen, the reference is a time-inhomogeneous Markov chain with step
-operators :math:`M_1, \dots, M_K` (:mod:`mfbridge.propagator`) and node weights
+operators :math:`M_1, \dots, M_K` (:mod:`mfbridge.numerics.propagator`) and node weights
 :math:`E_k = \mathrm{diag}(e^{-\omega_k V_k})` (trapezoid weights :math:`\omega_k`). The path
 measure of the bridge is
 
@@ -39,7 +39,7 @@ import numpy as np
 import ot
 
 from mfbridge.errors import MFBridgeError
-from mfbridge.propagator import StepOperator
+from mfbridge.numerics.propagator import StepOperator
 
 
 class UnderflowError(MFBridgeError):

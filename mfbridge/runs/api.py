@@ -1,4 +1,4 @@
-"""Python entry points: compose a config, solve it, load a saved result.
+"""Python entry points: compose a config, solve it, load a saved result, check it with particles.
 
 >>> import mfbridge
 >>> cfg = mfbridge.compose(["interaction=harmonic", "interaction.strength=1.5"])  # doctest: +SKIP
@@ -6,22 +6,32 @@
 >>> result.save("runs/example")                                                   # doctest: +SKIP
 >>> mfbridge.load("runs/example").cost                                            # doctest: +SKIP
 
-Hydra is imported only here, and only when a function needs it.
+Hydra is imported only by the runs layer, and only when a function needs it.
 """
 
 from __future__ import annotations
 
 import math
+import os
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
 from mfbridge.errors import InputError
-from mfbridge.fixed_point import Iteration, SolverOptions, solve_bridge
-from mfbridge.problem import BridgeProblem
-from mfbridge.result import BridgeResult
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import (
+    Confinement,
+    Interaction,
+    confinement_from_name,
+    interaction_from_name,
+)
+from mfbridge.model.problem import BridgeProblem
+from mfbridge.particles.statistics import CheckReport
+from mfbridge.particles.statistics import check as particle_check
+from mfbridge.result import RESULT_FILE, BridgeResult, dataset_summary
+from mfbridge.solvers.fixed_point import Iteration, SolverOptions, solve_bridge
 
-CONF_DIR = Path(__file__).resolve().parent.parent / "conf"
+CONF_DIR = Path(__file__).resolve().parents[2] / "conf"
 GROUPS = ("grid", "confinement", "interaction", "endpoints", "solver")
 
 
@@ -87,7 +97,7 @@ def build_problem(cfg: Any) -> BridgeProblem:
     endpoints = _build(cfg, "endpoints")
     if set(endpoints) != {"initial", "final"}:
         raise InputError("the endpoints group must define exactly 'initial' and 'final'")
-    from mfbridge.samples import check_same_dimension
+    from mfbridge.model.samples import check_same_dimension
 
     check_same_dimension(endpoints["initial"], endpoints["final"])
     return BridgeProblem(
@@ -106,14 +116,14 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
           warm_start: BridgeResult | None = None) -> BridgeResult:
     """Solve the bridge that ``cfg`` (from :func:`compose`) describes; the resolved config is
     stored in the result. ``warm_start``: a result on the same grid and steps that starts the
-    fixed-point solver (see :func:`~mfbridge.fixed_point.solve_bridge`); the config's
-    ``warm_start`` entry is read by the command line (:mod:`mfbridge.cli`), not here."""
+    fixed-point solver (see :func:`~mfbridge.solvers.fixed_point.solve_bridge`); the config's
+    ``warm_start`` entry is read by the command line (:mod:`mfbridge.runs.cli`), not here."""
     from omegaconf import OmegaConf
 
     problem = build_problem(cfg)
     options = _build(cfg, "solver")
     if type(options).__name__ == "DirectOptions":
-        from mfbridge.direct import DirectOptions, solve_direct
+        from mfbridge.solvers.direct import DirectOptions, solve_direct
 
         if isinstance(options, DirectOptions):
             if warm_start is not None:
@@ -128,8 +138,87 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
             result.config = OmegaConf.to_container(cfg, resolve=True)
             return result
     if not isinstance(options, SolverOptions):
-        raise InputError("the solver group must build a mfbridge.fixed_point.SolverOptions or "
-                         "a mfbridge.direct.DirectOptions")
+        raise InputError("the solver group must build a mfbridge.solvers.fixed_point.SolverOptions or "
+                         "a mfbridge.solvers.direct.DirectOptions")
     result = solve_bridge(problem, options, callback, warm_start=warm_start)
     result.config = OmegaConf.to_container(cfg, resolve=True)
     return result
+
+
+def load(directory: str | os.PathLike[str]) -> BridgeResult:
+    """Read a result written by :meth:`BridgeResult.save` back into a :class:`BridgeResult`
+    (the grid rebuilt as a :class:`~mfbridge.model.grid.Grid`). Raises :class:`InputError` for a
+    missing, incomplete or foreign folder, or another format version."""
+    import xarray as xr
+
+    folder = Path(directory)
+    path = folder / RESULT_FILE
+    if not folder.is_dir():
+        raise InputError(f"no run folder at {folder}")
+    if not path.is_file():
+        raise InputError(f"{folder} holds no {RESULT_FILE}: not a complete mfbridge result")
+    try:
+        with xr.open_dataset(path, engine="netcdf4") as ds:
+            ds = ds.load()
+    except Exception as exc:
+        raise InputError(f"cannot read {path}: {exc}") from exc
+    summary = dataset_summary(ds, str(path))
+    try:
+        g = summary["grid"]
+        grid = Grid(lower=tuple(g["lower"]), upper=tuple(g["upper"]), shape=tuple(g["shape"]))
+        return BridgeResult.from_dataset(ds, summary, grid)
+    except (KeyError, TypeError, ValueError) as exc:
+        raise InputError(f"{path} is not a complete mfbridge result: missing or bad {exc}") from exc
+
+
+# --------------------------------------------------------------------------- particle check
+
+
+def model_from_config(config: dict[str, Any]) -> tuple[Confinement, Interaction]:
+    """The confinement and interaction of a resolved run config (``_target_`` entries),
+    instantiated by Hydra (imported here, lazily)."""
+    from hydra.utils import instantiate
+    from omegaconf import OmegaConf
+
+    built = []
+    for group in ("confinement", "interaction"):
+        if not isinstance(config, dict) or group not in config:
+            raise InputError(f"the run's config has no {group!r} entry: cannot rebuild the model")
+        try:
+            built.append(instantiate(OmegaConf.create(config[group])))
+        except InputError:
+            raise
+        except Exception as exc:
+            cause = exc.__cause__ or exc
+            raise InputError(f"cannot rebuild the {group} of the run: {cause}") from exc
+    return built[0], built[1]
+
+
+def model_of_result(result: BridgeResult) -> tuple[Confinement, Interaction]:
+    """The U and W a result was solved with: from its resolved config (through Hydra, see
+    :func:`model_from_config`) or else from its model description (the potentials' registries)."""
+    if result.config and "confinement" in result.config and "interaction" in result.config:
+        return model_from_config(result.config)
+    try:
+        conf = dict(result.model["confinement"])
+        inter = dict(result.model["interaction"])
+        return (confinement_from_name(conf.pop("name"), **conf),
+                interaction_from_name(inter.pop("name"), **inter))
+    except (KeyError, TypeError, InputError) as exc:
+        raise InputError(
+            "this result records no config and its model cannot be rebuilt from its description "
+            f"({exc}); pass confinement= and interaction= to check()") from exc
+
+
+def check(result: BridgeResult, confinement: Confinement | None = None,
+          interaction: Interaction | None = None, **options: Any) -> CheckReport:
+    """Simulate N interacting particles driven by ``result``'s control and compare them with it:
+    :func:`mfbridge.particles.check` (its keyword ``options``: ``n_particles``, ``seeds``,
+    ``substeps``, ``pair_mode``, ``outputs``, ``uncontrolled``), with ``confinement`` and
+    ``interaction`` defaulting to the ones the result was solved with (rebuilt by
+    :func:`model_of_result`)."""
+    if confinement is None or interaction is None:
+        conf_rebuilt, inter_rebuilt = model_of_result(result)
+        confinement = confinement or conf_rebuilt
+        interaction = interaction or inter_rebuilt
+    return particle_check(result, confinement, interaction, **options)

@@ -7,10 +7,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from mfbridge.endpoints import endpoint_masses
 from mfbridge.errors import InputError
-from mfbridge.grid import Grid
-from mfbridge.potentials import Confinement, Interaction, NoConfinement, NoInteraction
+from mfbridge.model.endpoints import endpoint_masses
+from mfbridge.model.grid import Grid
+from mfbridge.model.potentials import Confinement, Interaction, NoConfinement, NoInteraction
 
 
 @dataclass(frozen=True)
@@ -35,7 +35,7 @@ class BridgeProblem:
 
     def __post_init__(self) -> None:
         if not isinstance(self.grid, Grid):
-            raise InputError(f"grid must be a mfbridge.grid.Grid, got {type(self.grid).__name__}")
+            raise InputError(f"grid must be a mfbridge.Grid, got {type(self.grid).__name__}")
         for name, value in (("noise", self.noise), ("horizon", self.horizon)):
             numeric = isinstance(value, (int, float, np.floating, np.integer))
             if isinstance(value, bool) or not numeric:
@@ -50,11 +50,13 @@ class BridgeProblem:
         object.__setattr__(self, "steps", int(steps))
         if not isinstance(self.confinement, Confinement):
             raise InputError(
-                f"confinement must be a mfbridge.potentials.Confinement, got {self.confinement!r}"
+                f"confinement must be a mfbridge.model.potentials.Confinement, "
+                f"got {self.confinement!r}"
             )
         if not isinstance(self.interaction, Interaction):
             raise InputError(
-                f"interaction must be a mfbridge.potentials.Interaction, got {self.interaction!r}"
+                f"interaction must be a mfbridge.model.potentials.Interaction, "
+                f"got {self.interaction!r}"
             )
         for name in ("initial", "final"):
             object.__setattr__(self, name, endpoint_masses(getattr(self, name), self.grid, name))

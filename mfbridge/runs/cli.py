@@ -9,7 +9,7 @@ call. A run folder (``hydra.run.dir``, or one sub-folder of ``hydra.sweep.dir`` 
 * ``config.yaml``: the resolved configuration;
 * ``record.json``: the run record: overrides, group choices, versions, git state, input-file
   hashes, times, status, the error of a failed run and the warm start (see
-  :mod:`mfbridge.records`);
+  :mod:`mfbridge.runs.records`);
 * ``complete.json``: the completion marker, written last, with the SHA-256 of the result,
   summary and record (a folder without it was killed or failed);
 * figures (``density.png``, ``moments.png``, ``convergence.png``; unless ``figures=false``);
@@ -17,7 +17,7 @@ call. A run folder (``hydra.run.dir``, or one sub-folder of ``hydra.sweep.dir`` 
 
 Warm starts (config entry ``warm_start``): ``auto`` (default) is ``nearest`` in a sweep and
 ``none`` in a single run; ``nearest`` starts the solver from the finished, converged run of the
-same sweep folder nearest in the swept numbers (:func:`mfbridge.records.nearest_run` defines
+same sweep folder nearest in the swept numbers (:func:`mfbridge.runs.records.nearest_run` defines
 the distance; the first jobs of a sweep, and parallel jobs that start together, start cold);
 ``none`` always starts cold; a path starts from that run folder. ``record.json`` says which run
 was used, or why none was. The answer does not depend on the start beyond the solver tolerance.
@@ -38,11 +38,11 @@ from typing import Any
 
 import numpy as np
 
-from mfbridge import records
-from mfbridge.api import CONF_DIR, solve
+from mfbridge.runs import records
+from mfbridge.runs.api import CONF_DIR, solve
 from mfbridge.errors import InputError, MFBridgeError
-from mfbridge.fixed_point import Iteration
-from mfbridge.records import WarmStart
+from mfbridge.solvers.fixed_point import Iteration
+from mfbridge.runs.records import WarmStart
 from mfbridge.result import BridgeResult
 
 log = logging.getLogger("mfbridge")
@@ -80,7 +80,7 @@ def choose_warm_start(config: dict[str, Any], out: Path, sweep_dir: Path | None
     """The result that starts the solver for a run of the resolved ``config`` into ``out`` (or
     ``None``) and what to record about it; ``sweep_dir`` is the sweep folder of a multirun job.
     """
-    from mfbridge.result import load
+    from mfbridge.runs.api import load
 
     choice = config.get("warm_start", "auto")
     choice = "auto" if choice is None else choice
@@ -124,19 +124,19 @@ def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None
     """Solve ``cfg``, write the result, the resolved config, the run record and figures into
     ``output_dir``; return the result.
 
-    Resume: when ``output_dir`` already holds a complete run (see :mod:`mfbridge.records`) of the
+    Resume: when ``output_dir`` already holds a complete run (see :mod:`mfbridge.runs.records`) of the
     same resolved config, nothing is recomputed and the *loaded* stored result is returned; a
     complete run of a different config is an :class:`~mfbridge.errors.InputError`. A folder
     left by a killed or failed run is recomputed. BLAS pools are capped at one thread for the
     whole run (parallel sweep jobs must not fight over the cores). ``record_extra`` sets fields
-    of the :class:`~mfbridge.records.RunRecord` (e.g. ``replay_of``). ``sweep_dir`` is where
+    of the :class:`~mfbridge.runs.records.RunRecord` (e.g. ``replay_of``). ``sweep_dir`` is where
     the finished runs of the same sweep are looked for a warm start (default: Hydra's
     ``hydra.sweep.dir`` in a multirun job; see :func:`choose_warm_start`).
     """
     from omegaconf import OmegaConf
     from threadpoolctl import threadpool_limits
 
-    from mfbridge.result import load
+    from mfbridge.runs.api import load
 
     out = Path(output_dir)
     config = OmegaConf.to_container(cfg, resolve=True)
@@ -186,7 +186,7 @@ def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None
                                 alt.status.replace("_", " "), alt.cost, alt.distance,
                                 np.array2string(alt.mean[len(alt.mean) // 2], precision=4))
                 if cfg.get("figures", True):
-                    from mfbridge.plotting import plot_result
+                    from mfbridge.runs.plotting import plot_result
 
                     for path in plot_result(result, out):
                         log.info("figure: %s", path)
@@ -205,12 +205,12 @@ def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None
             log.removeFilter(label_filter)
 
 
-# Subcommands: ``mfbridge NAME ...`` runs ``mfbridge.commands.NAME.main(argv)``; anything else
+# Subcommands: ``mfbridge NAME ...`` runs ``mfbridge.runs.commands.NAME.main(argv)``; anything else
 # is a Hydra override list for a solve.
 SUBCOMMANDS: dict[str, str] = {
-    "check": "mfbridge.commands.check",
-    "replay": "mfbridge.commands.replay",
-    "collect": "mfbridge.commands.collect",
+    "check": "mfbridge.runs.commands.check",
+    "replay": "mfbridge.runs.commands.replay",
+    "collect": "mfbridge.runs.commands.collect",
 }
 
 

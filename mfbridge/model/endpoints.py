@@ -24,7 +24,7 @@ import numpy as np
 from scipy.linalg import solve_triangular
 
 from mfbridge.errors import InputError
-from mfbridge.grid import Grid, _to_plain, to_float_array
+from mfbridge.model.grid import Grid, _to_plain, to_float_array
 
 __all__ = [
     "MIN_WIDTH_CELLS",

@@ -1,9 +1,6 @@
-r"""Endpoints from measured positions: files of samples turned into densities on the grid.
+r"""Files of sampled positions (CSV/TSV, NPY, NPZ, Parquet): paths, readers, validation.
 
-A user observes N particles (tracked beads, cells, agents) at t = 0 and M particles at t = T,
-possibly with weights. :class:`Samples` reads one such snapshot from a file and is an
-:class:`~mfbridge.endpoints.Endpoint`: it gives cell masses on any :class:`~mfbridge.grid.Grid`
-of its dimension.
+The endpoint built from them is :class:`mfbridge.model.samples.Samples`.
 
 Files (chosen by the extension)
 -------------------------------
@@ -18,30 +15,6 @@ Files (chosen by the extension)
 
 Positions are in the user's length unit L (the grid's box is given in the same unit); weights
 are dimensionless, ≥ 0, with a positive total, and are normalised to w_i / Σ_j w_j.
-
-Densities on the grid
----------------------
-``method="kde"``: the weighted Gaussian kernel density estimate
-
-.. math::  \hat\rho(x) = \sum_i w_i\,\mathcal N(x;\,x_i,\,H),
-
-with kernel covariance H (L²). ``bandwidth="scott"`` or ``"silverman"`` follow the convention
-of ``scipy.stats.gaussian_kde`` (Scott, *Multivariate Density Estimation*, 1992; Silverman,
-*Density Estimation for Statistics and Data Analysis*, 1986): H = f² Ĉ with Ĉ the weighted,
-bias-corrected sample covariance Ĉ = Σ_i w_i (x_i - x̄)(x_i - x̄)ᵀ / (1 - Σ_i w_i²), the
-effective sample size n_eff = 1/Σ_i w_i², and f = n_eff^{-1/(d+4)} (Scott) or
-f = (n_eff (d+2)/4)^{-1/(d+4)} (Silverman). A number is the kernel's standard deviation in L
-(H = b² I, the same on every axis). Cell masses use the point rule of
-:mod:`mfbridge.endpoints`, m[i] = ρ̂(x[i]) · Π_k h_k, renormalised; the kernel must be at least
-``min_width_cells`` (default 1) cells wide along every direction, where the rule's error is
-below 1e-8 of the mass.
-
-``method="histogram"``: m[i] = Σ of the weights of the samples inside cell i (closed on the
-upper wall), exact for the empirical law binned on the grid.
-
-``mean()`` and ``cov()`` are the moments of the weighted empirical law,
-x̄ = Σ_i w_i x_i and Σ_i w_i (x_i - x̄)(x_i - x̄)ᵀ (L, L²); the KDE's own covariance is
-``cov() + kernel_cov()``.
 
 Paths
 -----
@@ -60,44 +33,29 @@ from __future__ import annotations
 import csv
 import hashlib
 import io
-import math
 import os
 import zipfile
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, ClassVar
+from typing import Any
 
 import numpy as np
-from scipy.linalg import solve_triangular
 
-from mfbridge.endpoints import MIN_WIDTH_CELLS, Endpoint, box_text
 from mfbridge.errors import InputError
-from mfbridge.grid import MAX_DIM, Grid, _to_plain
+from mfbridge.model.grid import MAX_DIM, _to_plain
 
-__all__ = [
-    "BANDWIDTH_RULES",
-    "FORMATS",
-    "SampleData",
-    "Samples",
-    "auto_grid",
-    "box_from_samples",
-    "check_same_dimension",
-    "resolve_path",
-]
+__all__ = ["FORMATS", "REPO_ROOT", "SampleData", "plain_list", "read_samples", "resolve_path"]
 
-REPO_ROOT = Path(__file__).resolve().parent.parent
+REPO_ROOT = Path(__file__).resolve().parents[2]
 """The folder holding ``conf/`` and ``examples/``; relative paths are looked up there second."""
 
 FORMATS: dict[str, str] = {
     ".csv": "csv", ".tsv": "csv", ".npy": "npy", ".npz": "npz", ".parquet": "parquet",
     ".pq": "parquet",
 }
-BANDWIDTH_RULES = ("scott", "silverman")
-METHODS = ("kde", "histogram")
 MAX_ABS = 1e100
 """Largest accepted |coordinate| (L): beyond it moments overflow double precision."""
-_BLOCK = 2_000_000  # grid points × samples evaluated at once by the KDE
 
 
 # --------------------------------------------------------------------------- paths
@@ -166,7 +124,7 @@ class SampleData:
         return f"{self.row_kind} {int(self.rows[i])}"
 
 
-def _plain_list(value: Any, what: str) -> list[Any] | None:
+def plain_list(value: Any, what: str) -> list[Any] | None:
     if value is None:
         return None
     plain = _to_plain(value)
@@ -356,7 +314,7 @@ def _read_npy(path: Path, columns: list[Any] | None, weights: str | None
         loaded.close()
         raise InputError(f"{source} holds several arrays (an .npz archive) but is named .npy: "
                          "rename it to .npz")
-    values, labels = _array_positions(source, loaded, _plain_list(columns, "columns"), "array")
+    values, labels = _array_positions(source, loaded, plain_list(columns, "columns"), "array")
     return values, None, labels, np.arange(values.shape[0]), "row"
 
 
@@ -408,7 +366,7 @@ def _read_npz(path: Path, columns: list[Any] | None, weights: str | None, key: s
         except (ValueError, OSError, EOFError, zipfile.BadZipFile) as exc:
             raise InputError(f"{source}: cannot read its arrays without unpickling Python "
                              f"objects, or the archive is damaged: {exc}") from exc
-    values, labels = _array_positions(source, raw, _plain_list(columns, "columns"), repr(key))
+    values, labels = _array_positions(source, raw, plain_list(columns, "columns"), repr(key))
     w = None
     if raw_w is not None:
         w = _numeric_array(raw_w, source, f"weights array {weights!r}")
@@ -498,372 +456,17 @@ def _validate(path: Path, values: np.ndarray, raw_w: np.ndarray | None, labels: 
     return SampleData(values, w, tuple(labels), np.asarray(rows), row_kind, path, _sha256(path))
 
 
-# --------------------------------------------------------------------------- the endpoint
-
-
-def _check_bandwidth(bandwidth: Any) -> str | float:
-    if isinstance(bandwidth, str):
-        rule = bandwidth.strip().lower()
-        if rule not in BANDWIDTH_RULES:
-            raise InputError(f"bandwidth must be 'scott', 'silverman' or a positive length, "
-                             f"got {bandwidth!r}")
-        return rule
-    if isinstance(bandwidth, (bool, np.bool_)) or not isinstance(
-            bandwidth, (int, float, np.integer, np.floating)):
-        raise InputError(f"bandwidth must be 'scott', 'silverman' or a positive length, got "
-                         f"{bandwidth!r}")
-    value = float(bandwidth)
-    if not (math.isfinite(value) and value > 0):
-        raise InputError(f"bandwidth given as a length must be positive and finite, got {value}")
-    return value
-
-
-class Samples(Endpoint):
-    """Measured positions read from a file, as an endpoint (see the module docstring).
-
-    Parameters
-    ----------
-    path
-        CSV/TSV, NPY, NPZ or Parquet file (absolute, or relative to the working directory or
-        the repository root).
-    columns
-        Position columns: names (CSV, Parquet) or integer indices (NPY, NPZ); default all
-        columns except the weights column (CSV, Parquet) or the whole array (NPY, NPZ).
-    weights
-        Name of the weights column (CSV, Parquet) or array (NPZ); default equal weights.
-    bandwidth
-        ``"scott"``, ``"silverman"`` (kernel covariance f² Ĉ, as in scipy), or the kernel's
-        standard deviation in L (isotropic).
-    method
-        ``"kde"`` (Gaussian kernel density estimate) or ``"histogram"`` (weights binned on the
-        grid's cells).
-    key
-        NPZ only: name of the positions array.
-    """
-
-    name: ClassVar[str] = "samples"
-
-    def __init__(self, path: Any, columns: Any = None, weights: Any = None,
-                 bandwidth: Any = "scott", method: str = "kde", key: Any = None) -> None:
-        self.path = resolve_path(path)
-        self.format = FORMATS.get(self.path.suffix.lower(), "")
-        if not self.format:
-            raise InputError(f"sample file {self.path.name} has extension "
-                             f"{self.path.suffix or '(none)'!r}; supported: {', '.join(FORMATS)}")
-        if not isinstance(method, str) or method.strip().lower() not in METHODS:
-            raise InputError(f"method must be 'kde' or 'histogram', got {method!r}")
-        self.method = method.strip().lower()
-        self.bandwidth = _check_bandwidth(bandwidth)
-        if weights is not None and (not isinstance(weights, str) or not weights):
-            raise InputError(f"weights must be the name of a column or array, got {weights!r}")
-        self.weights_name: str | None = weights
-        if key is not None and (not isinstance(key, str) or not key):
-            raise InputError(f"key must be the name of an array in the .npz file, got {key!r}")
-        if key is not None and self.format != "npz":
-            raise InputError(f"key={key!r} selects an array in an .npz file, but "
-                             f"{self.path.name} is a {self.format} file")
-        self.key: str | None = key
-        self.columns = _plain_list(columns, "columns")
-        self._data: SampleData | None = None
-        self._kernel: np.ndarray | None = None
-
-    # ------------------------------------------------------------------ loading
-    @property
-    def data(self) -> SampleData:
-        """The validated snapshot, read from the file on first use."""
-        if self._data is None:
-            if self.format == "csv":
-                raw = _read_csv(self.path, self.columns, self.weights_name)
-            elif self.format == "npy":
-                raw = _read_npy(self.path, self.columns, self.weights_name)
-            elif self.format == "npz":
-                raw = _read_npz(self.path, self.columns, self.weights_name, self.key)
-            else:
-                raw = _read_parquet(self.path, self.columns, self.weights_name)
-            self._data = _validate(self.path, *raw)
-        return self._data
-
-    @property  # type: ignore[override]
-    def dim(self) -> int:
-        """Number of coordinates per sample d (1 to 3)."""
-        return self.data.dim
-
-    @property
-    def source(self) -> str:
-        return f"sample file {self.path.name}"
-
-    # ------------------------------------------------------------------ moments
-    def mean(self) -> np.ndarray:
-        """Weighted sample mean Σ w_i x_i, shape (d,) (L)."""
-        d = self.data
-        return d.weights @ d.positions
-
-    def cov(self) -> np.ndarray:
-        """Covariance of the weighted empirical law Σ w_i (x_i - x̄)(x_i - x̄)ᵀ, (d, d) (L²)."""
-        d = self.data
-        centred = d.positions - self.mean()
-        return (d.weights[:, None] * centred).T @ centred
-
-    def kernel_cov(self) -> np.ndarray:
-        """Kernel covariance H, shape (d, d) (L²); see the module docstring."""
-        if self._kernel is None:
-            self._kernel = self._kernel_cov()
-        return self._kernel.copy()
-
-    def _kernel_cov(self) -> np.ndarray:
-        data = self.data
-        d = data.dim
-        if isinstance(self.bandwidth, float):
-            return self.bandwidth**2 * np.eye(d)
-        n_eff = data.effective_size
-        if data.positions.shape[0] < 2 or n_eff <= 1.0 + 1e-12:
-            raise InputError(
-                f"{self.source}: the {self.bandwidth} bandwidth rule needs at least two samples "
-                f"with positive weight (effective sample size {n_eff:.3g}); give bandwidth as a "
-                "length or use method=histogram"
-            )
-        spread = self.cov() / (1.0 - float(np.sum(data.weights**2)))
-        scale = float(np.max(np.abs(data.positions))) or 1.0
-        eig = np.linalg.eigvalsh(spread)
-        if eig[0] <= 1e-12 * scale**2:
-            flat = [data.labels[k] for k in range(d) if spread[k, k] <= 1e-12 * scale**2]
-            detail = (f"all samples share the same {', '.join(repr(f) for f in flat)}" if flat
-                      else "the samples lie on a line")
-            raise InputError(
-                f"{self.source}: {detail}, so the {self.bandwidth} rule gives a kernel of zero "
-                "width; give bandwidth as a length or use method=histogram"
-            )
-        if self.bandwidth == "scott":
-            factor = n_eff ** (-1.0 / (d + 4))
-        else:
-            factor = (n_eff * (d + 2) / 4.0) ** (-1.0 / (d + 4))
-        return factor**2 * spread
-
-    # ------------------------------------------------------------------ densities
-    def density(self, x: np.ndarray) -> np.ndarray:
-        """Kernel density estimate ρ̂(x) (1/L^d) for points (..., d); returns shape (...).
-
-        Used by ``method="kde"``; a histogram has no density off the grid, so this is the KDE
-        for both methods.
-        """
-        arr = self._points(x)
-        data = self.data
-        chol = np.linalg.cholesky(self.kernel_cov())
-        flat = arr.reshape(-1, data.dim)
-        zp = solve_triangular(chol, flat.T, lower=True).T
-        zs = solve_triangular(chol, data.positions.T, lower=True).T
-        out = np.zeros(flat.shape[0])
-        block = max(1, _BLOCK // max(1, flat.shape[0]))
-        for s in range(0, zs.shape[0], block):
-            diff = zp[:, None, :] - zs[None, s:s + block, :]
-            out += np.exp(-0.5 * np.einsum("msd,msd->ms", diff, diff)) @ data.weights[s:s + block]
-        norm = (2.0 * math.pi) ** (-0.5 * data.dim) / float(np.prod(np.diag(chol)))
-        return (out * norm).reshape(arr.shape[:-1])
-
-    def _narrowest_width(self, grid: Grid) -> float:
-        h = np.asarray(grid.spacing)
-        scaled = self.kernel_cov() / np.outer(h, h)
-        return float(math.sqrt(max(np.linalg.eigvalsh(scaled)[0], 0.0)))
-
-    def _check_inside(self, grid: Grid, name: str) -> None:
-        data = self.data
-        lower, upper = np.asarray(grid.lower), np.asarray(grid.upper)
-        carried = data.weights > 0
-        outside = carried & ~np.all((data.positions >= lower) & (data.positions <= upper), axis=1)
-        if outside.any():
-            lo = data.positions[carried].min(axis=0)
-            hi = data.positions[carried].max(axis=0)
-            first = int(np.flatnonzero(outside)[0])
-            box, span = box_text(lower, upper, ".4g"), box_text(lo, hi, ".4g")
-            raise InputError(
-                f"{int(outside.sum())} of the {int(carried.sum())} {name} samples ({self.source}) "
-                f"lie outside the box {box}, first at {data.where(first)}; the data "
-                f"span {span}: use grid=span (a box fitted to the data) or enlarge "
-                "grid.lower/grid.upper"
-            )
-
-    def masses(self, grid: Grid, *, max_outside: float = 1e-3, name: str = "endpoint",
-               min_width_cells: float = MIN_WIDTH_CELLS) -> np.ndarray:
-        """Cell masses of the samples on ``grid``, shape grid.shape, sum 1 (see the module
-        docstring). Raises InputError when the dimension differs from the grid's, a sample lies
-        outside the box, the kernel is narrower than ``min_width_cells`` cells, or more than
-        ``max_outside`` of the KDE's mass falls outside the box."""
-        if not isinstance(grid, Grid):
-            raise InputError(f"masses of the {name} distribution need a mfbridge Grid, "
-                             f"got {grid!r}")
-        if self.dim != grid.dim:
-            raise InputError(
-                f"the {name} samples ({self.source}, columns {', '.join(self.data.labels)}) are "
-                f"{self.dim}-dimensional but the grid is {grid.dim}-dimensional: choose "
-                f"{grid.dim} position column(s) or a {self.dim}D grid"
-            )
-        self._check_inside(grid, name)
-        if self.method == "histogram":
-            return self._histogram(grid)
-        return self._point_masses(grid, name, float(max_outside), min_width_cells)
-
-    def _too_narrow(self, name: str, width: float, grid: Grid, min_width_cells: float) -> str:
-        return (
-            f"the bandwidth of the {name} samples ({self.source}) is too small for the "
-            f"grid: the kernel's smallest standard deviation is {width:.3g} grid cells "
-            f"(spacing {[round(h, 6) for h in grid.spacing]}), below {min_width_cells:g}; "
-            "use a larger bandwidth, a finer grid (grid.shape), or method=histogram"
-        )
-
-    def _outside(self, name: str, outside: float, grid: Grid, limit: float) -> str:
-        box = box_text(grid.lower, grid.upper, ".4g")
-        return (
-            f"{100 * outside:.3g}% of the kernel density of the {name} samples "
-            f"({self.source}) lies outside the box {box} (at most "
-            f"{100 * limit:.3g}% allowed): kernels of samples near the walls spill over; "
-            "use grid=span, enlarge the box, or give a smaller bandwidth"
-        )
-
-    def _histogram(self, grid: Grid) -> np.ndarray:
-        data = self.data
-        index = []
-        for k, faces in enumerate(grid.edges):
-            i = np.searchsorted(faces, data.positions[:, k], side="right") - 1
-            index.append(np.clip(i, 0, grid.shape[k] - 1))  # x == upper goes to the last cell
-        flat = np.ravel_multi_index(tuple(index), grid.shape)
-        m = np.bincount(flat, weights=data.weights, minlength=grid.size).reshape(grid.shape)
-        return m / m.sum()
-
-    # ------------------------------------------------------------------ records
-    def describe(self) -> dict[str, Any]:
-        """Plain-dict summary: file (absolute path, format, SHA-256), columns, sample count,
-        effective sample size, method, bandwidth, kernel covariance (L²), mean and covariance
-        of the weighted samples."""
-        data = self.data
-        out: dict[str, Any] = {
-            "name": self.name,
-            "path": str(self.path),
-            "format": self.format,
-            "sha256": data.sha256,
-            "columns": list(data.labels),
-            "weights": self.weights_name,
-            "samples": int(data.positions.shape[0]),
-            "effective_samples": data.effective_size,
-            "method": self.method,
-            "bandwidth": self.bandwidth,
-            "mean": self.mean().tolist(),
-            "cov": self.cov().tolist(),
-        }
-        if self.method == "kde":
-            out["kernel_cov"] = self.kernel_cov().tolist()
-        if self.key is not None:
-            out["key"] = self.key
-        return out
-
-    def __repr__(self) -> str:
-        return (f"Samples(path={str(self.path)!r}, columns={self.columns!r}, "
-                f"weights={self.weights_name!r}, bandwidth={self.bandwidth!r}, "
-                f"method={self.method!r})")
-
-
-# --------------------------------------------------------------------------- boxes
-
-
-def check_same_dimension(initial: Any, final: Any) -> None:
-    """Raise InputError if two endpoints have different dimensions (naming sample files)."""
-    if not (isinstance(initial, Endpoint) and isinstance(final, Endpoint)):
-        return
-    if initial.dim != final.dim:
-        def text(e: Endpoint) -> str:
-            if isinstance(e, Samples):
-                return f"{e.source} (columns {', '.join(e.data.labels)})"
-            return type(e).__name__
-        raise InputError(
-            f"dimension mismatch between the two snapshots: the initial one is {initial.dim}D "
-            f"({text(initial)}) but the final one is {final.dim}D ({text(final)}); give both "
-            "the same position columns"
-        )
-
-
-def _reach(endpoint: Endpoint) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(lowest, highest, width) per axis. Samples: the data range widened by 5 kernel standard
-    deviations (KDE) and the kernel standard deviation as width (0 for histograms). Other
-    endpoints: mean ± 6 standard deviations, width the standard deviation."""
-    if isinstance(endpoint, Samples):
-        data = endpoint.data
-        pts = data.positions[data.weights > 0]
-        sd = (np.sqrt(np.diag(endpoint.kernel_cov())) if endpoint.method == "kde"
-              else np.zeros(data.dim))
-        return pts.min(axis=0) - 5.0 * sd, pts.max(axis=0) + 5.0 * sd, sd
-    mean = np.asarray(endpoint.mean(), dtype=float)
-    sd = np.sqrt(np.diag(np.asarray(endpoint.cov(), dtype=float)))
-    # narrowest feature (e.g. one mixture component): the width in cells of a unit grid
-    unit = Grid(lower=0.0, upper=[3.0] * endpoint.dim, shape=3)
-    narrow = endpoint._narrowest_width(unit)
-    width = np.minimum(sd, narrow) if math.isfinite(narrow) else sd
-    return mean - 6.0 * sd, mean + 6.0 * sd, width
-
-
-def _check_margin(margin: Any) -> float:
-    if isinstance(margin, (bool, np.bool_)) or not isinstance(
-            margin, (int, float, np.integer, np.floating)) or not (
-            math.isfinite(float(margin)) and margin >= 0):
-        raise InputError(f"margin must be a fraction ≥ 0 of the data's extent, got {margin!r}")
-    return float(margin)
-
-
-def box_from_samples(initial: Endpoint, final: Endpoint, margin: float = 0.2
-                     ) -> tuple[tuple[float, ...], tuple[float, ...]]:
-    """A box (lower, upper) (L, one entry per axis) holding both snapshots.
-
-    Per axis: [lo - margin·(hi - lo), hi + margin·(hi - lo)], where lo and hi are the extremes,
-    over both snapshots, of the samples widened by 5 of that snapshot's kernel standard
-    deviations (KDE; none for histograms), so the kernel of an outermost sample loses less than
-    3e-7 of its mass; for other endpoints mean ± 6 standard deviations. ``margin`` is a
-    fraction ≥ 0.
-    """
-    lower, upper, _ = _box_and_widths(initial, final, margin)
-    return tuple(float(v) for v in lower), tuple(float(v) for v in upper)
-
-
-def _box_and_widths(initial: Endpoint, final: Endpoint, margin: Any
-                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    for label, e in (("initial", initial), ("final", final)):
-        if not isinstance(e, Endpoint):
-            raise InputError(f"the automatic box needs mfbridge endpoints; the {label} one is "
-                             f"{e!r}")
-    fraction = _check_margin(margin)
-    check_same_dimension(initial, final)
-    lo0, hi0, sd0 = _reach(initial)
-    lo1, hi1, sd1 = _reach(final)
-    lo, hi = np.minimum(lo0, lo1), np.maximum(hi0, hi1)
-    positive = [s for s in (sd0, sd1) if np.all(s > 0)]
-    width = np.min(positive, axis=0) if positive else np.zeros_like(lo)
-    extent = hi - lo
-    flat = np.flatnonzero(extent <= 1e-12 * np.maximum(np.abs(lo), 1.0))
-    if flat.size:
-        raise InputError(f"cannot fit a box: every sample has the same coordinate {lo[flat[0]]:g} "
-                         f"on axis {int(flat[0])} (and histograms add no kernel width); give "
-                         "grid.lower and grid.upper")
-    return lo - fraction * extent, hi + fraction * extent, width
-
-
-AUTO_CELLS = (16, 256)
-"""Smallest and largest number of cells per axis chosen by :func:`auto_grid`."""
-
-
-def auto_grid(initial: Endpoint, final: Endpoint, shape: Any = None, margin: float = 0.2,
-              cells_per_width: float = 1.5) -> Grid:
-    """A :class:`Grid` on :func:`box_from_samples` (``initial``, ``final``, ``margin``).
-
-    ``shape``: cells per axis (a scalar is used on every axis), or None to choose them: along
-    axis k, h_k = s_k / ``cells_per_width`` with s_k the narrower of the two snapshots' kernel
-    standard deviations along k (the endpoint's own for parametric endpoints), clipped to
-    :data:`AUTO_CELLS` cells; 64 cells per axis when neither snapshot has a width (histograms).
-    """
-    lower, upper, width = _box_and_widths(initial, final, margin)
-    if shape is None:
-        if isinstance(cells_per_width, (bool, np.bool_)) or not isinstance(
-                cells_per_width, (int, float)) or not cells_per_width > 0:
-            raise InputError(f"cells_per_width must be a positive number, got {cells_per_width!r}")
-        if np.all(width > 0):
-            n = np.ceil((upper - lower) * float(cells_per_width) / width)
-            shape = tuple(int(v) for v in np.clip(n, *AUTO_CELLS))
-        else:
-            shape = 64
-    return Grid(lower=tuple(map(float, lower)), upper=tuple(map(float, upper)), shape=shape)
+def read_samples(path: Path, file_format: str, columns: list[Any] | None, weights: str | None,
+                 key: str | None) -> SampleData:
+    """Read and validate one snapshot from ``path`` in ``file_format`` (a value of
+    :data:`FORMATS`); ``columns``, ``weights`` and ``key`` as for
+    :class:`~mfbridge.model.samples.Samples`."""
+    if file_format == "csv":
+        raw = _read_csv(path, columns, weights)
+    elif file_format == "npy":
+        raw = _read_npy(path, columns, weights)
+    elif file_format == "npz":
+        raw = _read_npz(path, columns, weights, key)
+    else:
+        raw = _read_parquet(path, columns, weights)
+    return _validate(path, *raw)

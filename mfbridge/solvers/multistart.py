@@ -1,9 +1,9 @@
 r"""Several initial guesses for the outer loop, and which of the bridges they reach to return.
 
 With a strong attraction and a non-convex confinement the rate function J can have several
-critical points, and the outer fixed-point loop (:mod:`mfbridge.fixed_point`) converges to the
-one whose basin holds its start. Solver option ``starts = m`` runs the usual start (cold or warm)
-and ``m - 1`` *tilted* guesses, and reports every distinct converged bridge.
+critical points, and the outer fixed-point loop (:mod:`mfbridge.solvers.fixed_point`) converges
+to the one whose basin holds its start. Solver option ``starts = m`` runs the usual start (cold or
+warm) and ``m - 1`` *tilted* guesses, and reports every distinct converged bridge.
 
 Tilted guesses
 --------------
@@ -42,9 +42,9 @@ import warnings
 
 import numpy as np
 
-from mfbridge import observables
 from mfbridge.errors import MultipleBridgesWarning
-from mfbridge.problem import BridgeProblem
+from mfbridge.model.problem import BridgeProblem
+from mfbridge.numerics import observables
 from mfbridge.result import Alternative, BridgeResult
 
 # Flows closer than this (max over time of the L1 distance of the masses) are one bridge; with

@@ -1,15 +1,15 @@
 r"""Quantities read off a flow of cell masses: moments, free energy, control field, cost parts.
 
 Every function takes masses ``p`` of shape (K+1, *grid.shape) (each slice sums to 1) on a
-:class:`~mfbridge.grid.Grid`; densities are ``p / grid.cell_volume``.
+:class:`~mfbridge.model.grid.Grid`; densities are ``p / grid.cell_volume``.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from mfbridge.grid import Grid
-from mfbridge.reference import PairField, faces
+from mfbridge.model.grid import Grid
+from mfbridge.numerics.reference import PairField, faces
 
 
 def _spatial_axes(grid: Grid) -> tuple[int, ...]:

@@ -31,8 +31,8 @@ import numpy as np
 import scipy.fft
 
 if TYPE_CHECKING:
-    from mfbridge.grid import Grid
-    from mfbridge.potentials import Interaction
+    from mfbridge.model.grid import Grid
+    from mfbridge.model.potentials import Interaction
 
 _SMALL = 1e-5
 

@@ -28,7 +28,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from mfbridge.errors import InputError, unknown_name
-from mfbridge.grid import to_float_array
+from mfbridge.model.grid import to_float_array
 
 __all__ = [
     "Confinement",

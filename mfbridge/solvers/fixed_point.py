@@ -3,7 +3,7 @@ r"""The outer fixed-point loop: the minimiser of the mean-field rate function J.
 Freeze the marginal flow :math:`\bar\rho` in the interaction and a potential :math:`\bar V`; the
 reference becomes a Markov chain with drift :math:`-\nabla(U + W*\bar\rho_t)` weighted by
 :math:`e^{-\int \bar V_t(X_t)dt}`, and its Schrödinger bridge is an entropic problem
-(:mod:`mfbridge.entropic`). Update :math:`(\bar\rho, \bar V)` from the solution until
+(:mod:`mfbridge.numerics.entropic`). Update :math:`(\bar\rho, \bar V)` from the solution until
 self-consistent. The first-order condition of
 :math:`J(P) = \mathrm{KL}(P \,|\, \Gamma(P))` (Γ(P): the reference driven by P's own marginals)
 gives the potential
@@ -44,13 +44,20 @@ from dataclasses import dataclass
 import numpy as np
 from threadpoolctl import threadpool_limits
 
-from mfbridge import entropic, multistart, observables
-from mfbridge.anderson import AndersonMixer
 from mfbridge.errors import ConvergenceWarning, InputError, PrecisionWarning, unknown_name
-from mfbridge.problem import BridgeProblem
-from mfbridge.propagator import UNIFORMISATION_TAIL, StepOperator, step_tail
-from mfbridge.reference import EdgeRates, PairField, bernoulli_derivative, edge_rates, faces
+from mfbridge.model.problem import BridgeProblem
+from mfbridge.numerics import entropic, observables
+from mfbridge.numerics.anderson import AndersonMixer
+from mfbridge.numerics.propagator import UNIFORMISATION_TAIL, StepOperator, step_tail
+from mfbridge.numerics.reference import (
+    EdgeRates,
+    PairField,
+    bernoulli_derivative,
+    edge_rates,
+    faces,
+)
 from mfbridge.result import BridgeResult
+from mfbridge.solvers import multistart
 
 METHODS = ("optimal", "frozen")
 PROPAGATIONS = ("auto", "rational", "log")
@@ -104,8 +111,8 @@ class SolverOptions:
       route, by forming the kernel once at the end (n × n memory; at most ``COUPLING_MAX_CELLS``
       cells). The dense route always returns it;
     * ``starts``: run the outer loop from this many initial guesses, the usual one and
-      ``starts - 1`` tilted ones (:mod:`mfbridge.multistart`); the cheapest converged bridge is
-      returned, the other distinct ones are in ``result.alternatives`` and a
+      ``starts - 1`` tilted ones (:mod:`mfbridge.solvers.multistart`); the cheapest converged
+      bridge is returned, the other distinct ones are in ``result.alternatives`` and a
       :class:`~mfbridge.errors.MultipleBridgesWarning` names their costs (1: one start).
     """
 
@@ -641,7 +648,7 @@ def _other_starts(problem: BridgeProblem, options: SolverOptions, route: str,
                   first: BridgeResult, callback: Callable[[Iteration], None] | None
                   ) -> BridgeResult:
     """Run the outer loop from ``options.starts - 1`` tilted guesses (no continuation: a guess
-    that fails is reported as such) and return :func:`mfbridge.multistart.gather` of all."""
+    that fails is reported as such) and return :func:`mfbridge.solvers.multistart.gather` of all."""
     found = [first]
     for label, p_bar in multistart.tilted_flows(problem, options.starts - 1):
         history: list[dict[str, float]] = []

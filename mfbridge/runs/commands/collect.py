@@ -1,6 +1,6 @@
 """``mfbridge collect SWEEP_DIR``: one table, one labelled dataset and figures for a sweep.
 
-Reads every job folder under ``SWEEP_DIR`` (see :func:`mfbridge.records.scan_sweep`) and writes,
+Reads every job folder under ``SWEEP_DIR`` (see :func:`mfbridge.runs.records.scan_sweep`) and writes,
 into ``SWEEP_DIR/collected/`` (or ``--out``):
 
 * ``runs.csv``: one row per run: the swept values, status, cost and its parts, iterations,
@@ -31,7 +31,7 @@ from typing import Any
 import numpy as np
 
 from mfbridge.errors import InputError
-from mfbridge.records import RunEntry, scan_sweep
+from mfbridge.runs.records import RunEntry, scan_sweep
 
 SCALARS = ("cost", "cost_kinetic", "cost_drift", "cost_free_energy", "iterations", "residual",
            "marginal_error")
@@ -110,7 +110,7 @@ def _summaries(result: Any) -> dict[str, float]:
 
 def collect_rows(sweep_dir: Path) -> tuple[list[str], list[Row], list[Any]]:
     """The swept keys, one :class:`Row` per job folder and the loaded complete results."""
-    from mfbridge.result import load
+    from mfbridge.runs.api import load
 
     if not sweep_dir.is_dir():
         raise InputError(f"no sweep folder at {sweep_dir}")
@@ -153,7 +153,7 @@ def _never_started(sweep_dir: Path, keys: list[str], rows: list[Row]) -> list[Ro
     """Rows for the jobs that ``multirun.yaml`` asks for but that have no folder at all."""
     from omegaconf import OmegaConf
 
-    from mfbridge.records import expected_jobs
+    from mfbridge.runs.records import expected_jobs
 
     multirun = sweep_dir / "multirun.yaml"
     if not multirun.is_file():

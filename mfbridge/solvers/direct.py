@@ -1,0 +1,343 @@
+r"""Direct solver: minimise the discretised action with a density-dependent mobility.
+
+The action (see :mod:`mfbridge.model.mobility`) with noise σ, mobility χ, diffusion D,
+:math:`\Phi = U + W*\rho`:
+
+.. math::
+
+    J(\rho, j) = \frac{1}{2\sigma^2}\int_0^T\!\!\int
+        \frac{|j - b[\rho]|^2}{\chi(\rho)}\,dx\,dt,\qquad
+    b[\rho] = -\tfrac{\sigma^2}{2}D(\rho)\nabla\rho - \chi(\rho)\nabla\Phi,\qquad
+    \partial_t\rho + \nabla\cdot j = 0 .
+
+For χ = ρ, D = 1 this is the main solver's J (:mod:`mfbridge.solvers.fixed_point`), which makes this
+solver an independent cross-check of it.
+
+This module is the driver (options, warm start, result); the discretised action is in
+:mod:`mfbridge.solvers.direct_action`, its minimisers (truncated Newton with a log barrier in
+1D, L-BFGS) in :mod:`mfbridge.solvers.direct_optimisers`.
+
+Warm start: McCann's displacement interpolation
+(1D quantile interpolation; 2D from the exact plan of ``ot.emd``), blended with 1e-3 of the linear
+interpolation (itself mixed with 1e-12 of the uniform profile, as endpoints may vanish on far
+cells) to keep every cell positive; the linear interpolation is used when the
+displacement interpolation leaves the domain.
+
+**Mass scale**: :class:`~mfbridge.model.problem.BridgeProblem` stores normalised masses; the
+mobility and the mean field see densities of total mass M = ``DirectOptions.total_mass``
+(for exclusion: the occupation per site, so M must keep the endpoints below 1). The returned
+:class:`~mfbridge.result.BridgeResult` keeps the package's convention: ``density`` is the
+normalised density (the occupation is ``total_mass × density``), while ``cost``, its parts and
+``free_energy`` are those of the mass-M profile (for walkers without interaction, M times the
+per-particle values). ``log_forward``, ``log_backward`` and ``correction`` are NaN: no
+Schrödinger potentials exist here. ``control`` is the velocity :math:`(j - b)/\rho_f`
+interpolated to cell centres and time nodes (for walkers, σ²∇ψ of the main solver).
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from threadpoolctl import threadpool_limits
+
+from mfbridge.errors import ConvergenceWarning, InputError, is_real_number, unknown_name
+from mfbridge.model.grid import Grid
+from mfbridge.model.mobility import Mobility, Walkers
+from mfbridge.model.problem import BridgeProblem
+from mfbridge.numerics import observables
+from mfbridge.numerics.reference import faces
+from mfbridge.result import BridgeResult
+from mfbridge.solvers.direct_action import DirectAction, action
+from mfbridge.solvers.direct_optimisers import (
+    Objective,
+    density_variables,
+    inside,
+    interior_newton,
+    lbfgs,
+    softmax_variables,
+)
+
+__all__ = ["DirectAction", "DirectOptions", "action", "displacement_interpolation",
+           "solve_direct"]
+
+WARM_STARTS = ("displacement", "linear")
+METHODS = ("newton", "lbfgs")
+OT_MAX_CELLS = 4096
+FLOOR_MIX = 1e-12
+
+
+@dataclass(frozen=True)
+class DirectOptions:
+    """Options of the direct solver.
+
+    * ``mobility``: a :class:`~mfbridge.model.mobility.Mobility` (default independent walkers);
+    * ``total_mass``: M, the mass of the density profiles the mobility sees (see the module
+      docstring; e.g. the mean occupation times the box volume for exclusion);
+    * ``method``: ``"newton"`` (truncated Newton with a barrier; 1D) or ``"lbfgs"`` (always
+      used in 2D); ``max_iter``: Newton or L-BFGS iterations; ``max_cg``: CG iterations per
+      Newton step; ``memory``: L-BFGS history depth;
+    * ``tol``: Newton stops when the predicted decrease of a Newton step is below ``tol`` × J
+      (the barrier's bias is then also below ``tol`` × J); L-BFGS when the cost decreased by
+      less than ``tol`` × J over the last ``window`` iterations; ``gtol``: or when the largest
+      gradient entry is below it;
+    * ``warm_start``: ``"displacement"`` (McCann interpolation) or ``"linear"``.
+    """
+
+    mobility: Mobility = field(default_factory=Walkers)
+    total_mass: float = 1.0
+    max_iter: int = 20000
+    tol: float = 1e-9
+    gtol: float = 1e-10
+    memory: int = 20
+    window: int = 20
+    warm_start: str = "displacement"
+    method: str = "newton"
+    max_cg: int = 500
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.mobility, Mobility):
+            raise InputError(f"direct solver option mobility must be a mfbridge.model.mobility."
+                             f"Mobility, got {self.mobility!r}")
+        if self.warm_start not in WARM_STARTS:
+            raise unknown_name("warm_start", self.warm_start, WARM_STARTS)
+        if self.method not in METHODS:
+            raise unknown_name("method", self.method, METHODS)
+        checks = [
+            ("total_mass", is_real_number(self.total_mass)
+             and self.total_mass > 0),
+            ("max_iter", _is_int(self.max_iter) and self.max_iter >= 1),
+            ("max_cg", _is_int(self.max_cg) and self.max_cg >= 1),
+            ("memory", _is_int(self.memory) and self.memory >= 1),
+            ("window", _is_int(self.window) and self.window >= 1),
+            ("tol", is_real_number(self.tol) and self.tol >= 0),
+            ("gtol", is_real_number(self.gtol) and self.gtol >= 0),
+        ]
+        for name, ok in checks:
+            if not ok:
+                raise InputError(f"direct solver option {name} has an invalid value "
+                                 f"{getattr(self, name)!r}")
+        object.__setattr__(self, "total_mass", float(self.total_mass))
+
+
+def _is_int(v: Any) -> bool:
+    return is_real_number(v) and float(v) == int(v)
+
+
+# --------------------------------------------------------------------------- warm start
+
+
+def _cell_cdf_quantiles(p: np.ndarray, edges: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """Quantile function of the piecewise-uniform law with cell masses p at levels u."""
+    cdf = np.concatenate([[0.0], np.cumsum(p)])
+    cdf /= cdf[-1]
+    keep = np.concatenate([[True], np.diff(cdf) > 0])
+    return np.interp(u, cdf[keep], edges[keep])
+
+
+def displacement_interpolation(problem: BridgeProblem) -> np.ndarray:
+    """McCann's displacement interpolation between the problem's endpoints as cell masses
+    (K+1, *shape), each slice summing to 1.
+
+    1D: quantile interpolation :math:`Q_t = (1-t)Q_\\mu + tQ_\\nu` of the piecewise-uniform
+    laws, read back as masses by differencing the CDF at the cell edges. 2D: the exact plan π of
+    ``ot.emd`` between the cell masses; each pair moves along the straight line and is
+    deposited by bilinear (cloud-in-cell) weights.
+    """
+    grid = problem.grid
+    mu, nu = problem.initial, problem.final
+    s = problem.times / problem.horizon
+    out = np.empty((len(s), *grid.shape))
+    if grid.dim == 1:
+        edges = grid.edges[0]
+        u = np.linspace(0.0, 1.0, 20 * grid.size + 1)
+        q0 = _cell_cdf_quantiles(mu, edges, u)
+        q1 = _cell_cdf_quantiles(nu, edges, u)
+        for k, t in enumerate(s):
+            qt = (1 - t) * q0 + t * q1
+            cdf = np.interp(edges, qt, u)
+            cdf[0], cdf[-1] = 0.0, 1.0
+            out[k] = np.clip(np.diff(cdf), 0.0, None)
+    else:
+        import ot
+
+        if grid.size > OT_MAX_CELLS:
+            raise InputError(f"the displacement warm start needs an exact plan of {grid.size}² "
+                             f"entries; use warm_start='linear' above {OT_MAX_CELLS} cells")
+        pts = grid.points.reshape(-1, grid.dim)
+        a, b = mu.ravel(), nu.ravel()
+        ia, ib = np.flatnonzero(a > 0), np.flatnonzero(b > 0)
+        cost = ot.dist(pts[ia], pts[ib])
+        plan = ot.emd(a[ia] / a[ia].sum(), b[ib] / b[ib].sum(), cost, numItermax=10**7)
+        ri, ci = np.nonzero(plan > 0)
+        weights = plan[ri, ci]
+        x0, x1 = pts[ia[ri]], pts[ib[ci]]
+        lower = np.asarray(grid.lower)
+        spacing = np.asarray(grid.spacing)
+        for k, t in enumerate(s):
+            pos = ((1 - t) * x0 + t * x1 - lower) / spacing - 0.5
+            base = np.floor(pos).astype(int)
+            frac = pos - base
+            slab = np.zeros(grid.shape)
+            for corner in np.ndindex(*(2,) * grid.dim):
+                c = np.asarray(corner)
+                idx = np.clip(base + c, 0, np.asarray(grid.shape) - 1)
+                w = weights * np.prod(np.where(c == 1, frac, 1 - frac), axis=1)
+                np.add.at(slab, tuple(idx.T), w)
+            out[k] = slab
+    out /= out.reshape(len(s), -1).sum(axis=1).reshape(-1, *([1] * grid.dim))
+    out[0], out[-1] = mu, nu
+    return out
+
+
+# --------------------------------------------------------------------------- solver
+
+
+def solve_direct(problem: BridgeProblem, options: DirectOptions | None = None,
+                 callback: Callable[[int, float, float], None] | None = None) -> BridgeResult:
+    """Minimise the discretised action of ``problem`` with ``options.mobility``.
+
+    Returns a :class:`~mfbridge.result.BridgeResult` (method ``"direct"``, route the mobility's
+    name); ``status`` is ``"converged"`` or ``"not_converged"``/``"stalled"`` (then a
+    :class:`~mfbridge.errors.ConvergenceWarning` is issued). ``callback(iteration, cost,
+    gradient)`` is called after every L-BFGS iteration. Raises :class:`InputError` when an
+    endpoint leaves the mobility's domain at the chosen ``total_mass``.
+    """
+    options = options or DirectOptions()
+    if not isinstance(options, DirectOptions):
+        raise InputError(f"solve_direct needs DirectOptions, got {type(options).__name__}")
+    import torch
+
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        with threadpool_limits(limits=1):
+            return _solve(problem, options, callback)
+    finally:
+        torch.set_num_threads(threads)
+
+
+def _check_endpoints(problem: BridgeProblem, options: DirectOptions) -> None:
+    mob, mass, vol = options.mobility, options.total_mass, problem.grid.cell_volume
+    for name, p in (("initial", problem.initial), ("final", problem.final)):
+        rho = mass * p / vol
+        hint = ""
+        if rho.max() >= mob.upper:
+            hint = (f"; at total_mass = {mass:g} the peak density is {rho.max():.4g}: lower "
+                    f"DirectOptions.total_mass below {mass * mob.upper / rho.max():.4g}")
+        mob.check_density(rho, f"the {name} density (total_mass × normalised density)", hint)
+
+
+def _solve(problem: BridgeProblem, options: DirectOptions,
+           callback: Callable[[int, float, float], None] | None) -> BridgeResult:
+    import torch
+
+    start = time.perf_counter()
+    _check_endpoints(problem, options)
+    act = DirectAction(problem, options.mobility, options.total_mass)
+    grid, mob, mass = problem.grid, options.mobility, options.total_mass
+    vol = grid.cell_volume
+    k_steps = problem.steps
+    # endpoints may vanish on far cells; the interior must not (χ > 0, barrier)
+    linear = (1 - FLOOR_MIX) * problem.linear_flow() + FLOOR_MIX / grid.size
+    if options.warm_start == "displacement" and k_steps > 1:
+        guess = 0.999 * displacement_interpolation(problem) + 0.001 * linear
+        if not inside(mob, mass * guess[1:-1] / vol):
+            guess = linear
+    else:
+        guess = linear
+    interior = guess[1:-1]
+    if k_steps > 1 and not inside(mob, mass * interior / vol):
+        raise InputError("the linear interpolation of the endpoints leaves the mobility's domain")
+    # Newton's preconditioner exists in 1D only (preconditioner_1d); 2D uses L-BFGS
+    use_lbfgs = options.method == "lbfgs" or grid.dim == 2
+    if use_lbfgs:
+        unpack, x0 = softmax_variables(act, guess)
+    else:
+        unpack, x0 = density_variables(act, guess)
+    objective = Objective(act, unpack, mob)
+    setup = time.perf_counter() - start
+    if use_lbfgs:
+        opt = lbfgs(objective.value_grad, x0, options, callback)
+    else:
+        opt = interior_newton(objective, x0, options, callback)
+    solve_seconds = time.perf_counter() - start - setup
+    with torch.no_grad():
+        rho_t = unpack(torch.from_numpy(opt.x))
+        cost = float(act.value(rho_t))
+        kinetic = float(act.kinetic(rho_t))
+        terms = act.face_terms(rho_t)
+        velocity = [((j - b) / rf).numpy() for j, b, _, rf in terms]
+    rho = rho_t.numpy()
+    p = rho * vol / mass
+    fe = act.free_energy(rho)
+    delta_f = float(fe[-1] - fe[0]) / problem.noise**2
+    mean, cov = observables.moments(p, grid)
+    masses = p.reshape(len(p), -1).sum(axis=1)
+    marginal_error = float(np.abs(masses - 1.0).max())
+    status, message = opt.status, opt.message
+    if status == "converged":
+        message = f"converged: {message}; J = {cost:.8g}"
+    else:
+        warnings.warn(ConvergenceWarning(f"direct solver {status}: {message}"), stacklevel=2)
+    nan = np.full(rho.shape, np.nan)
+    model = {
+        "confinement": _describe(problem.confinement),
+        "interaction": _describe(problem.interaction),
+        "mobility": mob.describe(),
+        "total_mass": mass,
+    }
+    return BridgeResult(
+        grid=grid,
+        times=problem.times,
+        density=p / vol,
+        control=_centre_control(velocity, grid, k_steps),
+        log_forward=nan,
+        log_backward=nan.copy(),
+        correction=nan.copy(),
+        mean=mean,
+        cov=cov,
+        free_energy=fe,
+        entropy=observables.entropy(rho * vol, grid),
+        cost=cost,
+        cost_kinetic=kinetic,
+        cost_drift=cost - kinetic - delta_f,
+        cost_free_energy=delta_f,
+        noise=problem.noise,
+        method="direct",
+        route=mob.name,
+        status=status,
+        message=message,
+        iterations=opt.iterations,
+        residual=opt.grad_norm,
+        marginal_error=marginal_error,
+        history=opt.history,
+        timings={"setup": setup, "solve": solve_seconds, "total": time.perf_counter() - start},
+        model=model,
+    )
+
+
+def _centre_control(velocity: list[np.ndarray], grid: Grid, k_steps: int) -> np.ndarray:
+    """Face velocities per step → cell centres (mean of the two faces, walls 0) → time nodes
+    (mean of the adjacent steps); shape (K+1, *shape, d)."""
+    comps = []
+    for a, v in enumerate(velocity):
+        pad = [(0, 0)] * v.ndim
+        pad[1 + a] = (1, 1)
+        full = np.pad(v, pad)
+        lo, hi = faces(full.ndim, 1 + a, full.shape[1 + a])
+        cell = 0.5 * (full[lo] + full[hi])
+        nodes = np.empty((k_steps + 1, *grid.shape))
+        nodes[0], nodes[-1] = cell[0], cell[-1]
+        nodes[1:-1] = 0.5 * (cell[1:] + cell[:-1])
+        comps.append(nodes)
+    return np.stack(comps, axis=-1)
+
+
+def _describe(obj: object) -> dict[str, object]:
+    describe = getattr(obj, "describe", None)
+    return describe() if callable(describe) else {"repr": repr(obj)}
