@@ -152,9 +152,10 @@ def test_cross_covariance_matches_sinkhorn_2d_non_diagonal() -> None:
 
 @pytest.mark.parametrize(("a", "kappa", "sigma", "T", "S0", "S1"), CASES)
 def test_schroedinger_system_factorisation(a, kappa, sigma, T, S0, S1) -> None:
-    # Theorem (Föllmer 1988, "Random fields and diffusion processes"; Léonard 2014, "A survey
-    # of the Schrödinger problem and some of its connections with optimal transport"): π solves
-    # the static Schrödinger problem iff dπ/dR0T = f(x) g(y). For Gaussians log dπ/dR0T is
+    # Theorem (Föllmer, "Random fields and diffusion processes", Saint-Flour XV–XVII, 1988;
+    # Chen, Georgiou & Pavon, "Stochastic control liaisons: Richard Sinkhorn meets Gaspard Monge
+    # on a Schrödinger bridge", SIAM Review 63, 2021): π solves the static Schrödinger problem
+    # iff dπ/dR0T = f(x) g(y). For Gaussians log dπ/dR0T is
     # quadratic, and the absence of an x–y term means the cross blocks of the precision
     # matrices of π and R0T coincide. R0T is built here from the OU transition law; the
     # coupling [[S0, C], [Cᵀ, S1]] must also be positive definite.
@@ -259,8 +260,9 @@ def test_centred_cost_two_formulas(a, kappa, sigma, T, S0, S1) -> None:
     # 1959, from memory), with R0T built here, vs the module's cost_centred; and both vs the
     # dynamic cost (1/(2σ²)) ∫ tr(A_t S_t A_t) dt by scipy.integrate.quad (Girsanov: KL of path
     # laws with the same initial law = (1/(2σ²)) E ∫ |u|² dt, and the path KL equals the
-    # endpoint KL for a bridge, Léonard 2014). Measured: matrix formula ≤ 1.6e-15 relative,
-    # quadrature ≤ 1.1e-15 relative; tolerances 1e-11 and 1e-11.
+    # endpoint KL for a bridge, Föllmer 1988; Chen, Georgiou & Pavon, SIAM Review 2021).
+    # Measured: matrix formula ≤ 1.6e-15 relative, quadrature ≤ 1.1e-15 relative; tolerances
+    # 1e-11 and 1e-11.
     d = S0.shape[0]
     b = lq_bridge(
         stiffness=a,

@@ -67,7 +67,9 @@ cross term vanishes and ``J = J_mean + J_centred`` exactly:
     so ``S_t = α_t² S0 + β_t² S1 + α_t β_t (C + Cᵀ) + γ_t I``. The centred control is linear,
     ``ũ_t(y) = A_t y`` with ``A_t`` symmetric, the solution of the Sylvester equation
     ``S_t A_t + A_t S_t = dS_t/dt + 2θ S_t - σ² I`` (the covariance equation
-    ``dS/dt = (A - θI)S + S(A - θI) + σ² I``). ``J_centred = KL(π | R0T)``, also equal to
+    ``dS/dt = (A - θI)S + S(A - θI) + σ² I``). ``J_centred = KL(π | R0T)`` (the path-space
+    and the endpoint relative entropies of a bridge agree, since given its endpoints the bridge
+    is the reference bridge: Föllmer 1988; Chen, Georgiou & Pavon 2021), also equal to
     ``(1/(2σ²)) ∫ tr(A_t S_t A_t) dt``.
 
 The optimal control field is ``u_t(x) = ū(t) + A_t (x - m_t)``.
@@ -95,8 +97,10 @@ References
   Gaussian measures", Information Geometry 2022.
 * C. Bunne, Y.-P. Hsieh, M. Cuturi, A. Krause, "The Schrödinger bridge between Gaussian
   measures has a closed form", AISTATS 2023.
-* C. Léonard, "A survey of the Schrödinger problem and some of its connections with optimal
-  transport", Discrete Contin. Dyn. Syst. A, 2014.
+* H. Föllmer, "Random fields and diffusion processes", École d'Été de Probabilités de
+  Saint-Flour XV–XVII, Springer, 1988.
+* Y. Chen, T. T. Georgiou, M. Pavon, "Stochastic control liaisons: Richard Sinkhorn meets
+  Gaspard Monge on a Schrödinger bridge", SIAM Review 63, 2021.
 """
 
 from __future__ import annotations
