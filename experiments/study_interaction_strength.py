@@ -155,7 +155,8 @@ mfbridge collect {SWEEP_REL}
 
 {chr(10).join(lines)}
 
-(J = kinetic + drift + free-energy change, the decomposition reported by the solver.)
+(J = kinetic + drift + free-energy change, the decomposition reported by the solver; each
+part is computed from its own formula, so the sum equals J up to the discretisation error.)
 
 ## Findings
 

@@ -100,7 +100,9 @@ class BridgeResult:
       minimiser of J (zero for the ``frozen`` method);
     * ``cost``: J (dimensionless, per particle) = ``cost_kinetic`` + ``cost_drift`` +
       ``cost_free_energy``, with :math:`\frac{1}{2\sigma^2}\iint|v|^2\rho`,
-      :math:`\frac{1}{2\sigma^2}\iint|b|^2\rho` and :math:`(F(\nu) - F(\mu))/\sigma^2`;
+      :math:`\frac{1}{2\sigma^2}\iint|b|^2\rho` and :math:`(F(\nu) - F(\mu))/\sigma^2`
+      (v the flow's velocity, b the reference drift): each part is computed from its own
+      formula, so on the grid the sum equals J up to the discretisation error;
     * ``mean`` (K+1, d), ``cov`` (K+1, d, d), ``free_energy`` and ``entropy`` (K+1,).
     """
 

@@ -84,9 +84,14 @@ def test_solved_tiny_problem_is_converged(solved_1d: Solved) -> None:
     assert result.residual <= 1e-9
     masses = result.masses.sum(axis=1)
     np.testing.assert_allclose(masses, 1.0, atol=1e-9)
-    assert result.cost == pytest.approx(
-        result.cost_kinetic + result.cost_drift + result.cost_free_energy, rel=1e-12
-    )
+    # the three parts are computed each from its own formula (kinetic and drift by the cost's
+    # flux quadrature, the free-energy change from F at the ends); J = kinetic + drift + dF/sigma^2
+    # holds in the continuum (common practice, no source: expand |j - r|^2 and integrate the
+    # cross term by parts with the continuity equation) and on the grid up to the discretisation
+    # error: measured relative gap -1.99e-3 on 48 cells x 10 steps (its order: tests/
+    # test_optimality.py::test_cost_parts_add_up_at_second_order)
+    parts = result.cost_kinetic + result.cost_drift + result.cost_free_energy
+    assert abs(result.cost - parts) <= 4e-3 * result.cost
 
 
 def test_result_nc_is_labelled_1d(solved_1d: Solved) -> None:
@@ -174,6 +179,14 @@ def test_result_nc_is_labelled_2d(solved_2d: Solved) -> None:
         np.testing.assert_allclose(result.mean[k], expected, atol=1e-8)
     np.testing.assert_allclose(result.mean[0], [-1.0, 0.5], atol=1e-2)
     np.testing.assert_allclose(result.mean[-1], [1.0, -0.5], atol=1e-2)
+
+
+def test_cost_parts_add_up_2d(solved_2d: Solved) -> None:
+    # as in 1D (test_solved_tiny_problem_is_converged); measured relative gap -5.01e-3 on
+    # 16x16 cells x 8 steps
+    result = solved_2d.result
+    parts = result.cost_kinetic + result.cost_drift + result.cost_free_energy
+    assert abs(result.cost - parts) <= 1e-2 * result.cost
 
 
 def test_load_round_trips_exactly_2d(solved_2d: Solved) -> None:

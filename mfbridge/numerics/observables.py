@@ -67,7 +67,9 @@ def flux_action(
     (K+1, *grid.shape) with axis a one shorter); on a face, :math:`\int|w_a|^2\rho \approx
     j^2 h_a^2 / \bar p` with :math:`\bar p` the mean mass of the two cells; ``weights`` are the
     trapezoid weights in time, shape (K+1,). With the flux of the bridge this is the kinetic part
-    of the cost; with the flux of the control (bridge minus reference) it is J itself.
+    of the cost, with the flux of the reference chain at the same density the drift part; with
+    the flux of the control (bridge minus reference) it is J itself. The three share this one
+    quadrature, so a change of it changes them together.
     """
     total = np.zeros(p.shape[0])
     for a, j in enumerate(net_flux):

@@ -268,9 +268,9 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
     solve_seconds = time.perf_counter() - start - setup
     with torch.no_grad():
         rho_t = unpack(torch.from_numpy(opt.x))
-        cost = float(act.value(rho_t))
-        kinetic = float(act.kinetic(rho_t))
         terms = act.face_terms(rho_t)
+        cost, kinetic, drift = (float(act.face_action(terms, w))
+                                for w in ("control", "bridge", "drift"))
         velocity = [((j - b) / rf).numpy() for j, b, _, rf in terms]
     rho = rho_t.numpy()
     p = rho * vol / mass
@@ -305,7 +305,7 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
         entropy=observables.entropy(rho * vol, grid),
         cost=cost,
         cost_kinetic=kinetic,
-        cost_drift=cost - kinetic - delta_f,
+        cost_drift=drift,
         cost_free_energy=delta_f,
         noise=problem.noise,
         method="direct",

@@ -191,19 +191,25 @@ class DirectAction:
         return [(flux * h / self.vol, b, chi, rf) for flux, h, b, chi, rf
                 in zip(fluxes, self.grid.spacing, drifts, chis, rfs, strict=True)]
 
-    def value(self, rho: Any) -> Any:
-        """J of the density flow ``rho`` (K+1, *shape)."""
+    def face_action(self, terms: list[tuple[Any, Any, Any, Any]], flux: str) -> Any:
+        r""":math:`\frac{\Delta t}{2\sigma^2}\sum_k\sum_a\sum_{faces}|c|\,w^2/\chi(\rho_f)`
+        over the ``terms`` of :meth:`face_terms` for the face flux w named by ``flux``:
+        ``"control"`` (j − b: J itself), ``"bridge"`` (j: the kinetic part) or ``"drift"``
+        (b: the drift part); the one quadrature of the action and of its parts. Since
+        :math:`|j - b|^2 = |j|^2 - 2j\cdot b + |b|^2` and the cross term
+        :math:`-\frac{1}{\sigma^2}\iint j\cdot b/\chi` tends to
+        :math:`(F(\rho_T) - F(\rho_0))/\sigma^2` (Einstein relation
+        :math:`b = -\chi\nabla\,\delta F/\delta\rho`, continuity, no-flux walls),
+        J ≈ kinetic + drift + ΔF/σ² up to the discretisation error."""
         total = 0.0
-        for j, b, chi, _ in self.face_terms(rho):
-            total = total + ((j - b) ** 2 / chi).sum()
+        for j, b, chi, _ in terms:
+            w = {"control": j - b, "bridge": j, "drift": b}[flux]
+            total = total + (w**2 / chi).sum()
         return total * self.vol * self.dt / (2.0 * self.noise**2)
 
-    def kinetic(self, rho: Any) -> Any:
-        r""":math:`\frac{1}{2\sigma^2}\iint |j|^2/\chi` of the flow."""
-        total = 0.0
-        for j, _, chi, _ in self.face_terms(rho):
-            total = total + (j**2 / chi).sum()
-        return total * self.vol * self.dt / (2.0 * self.noise**2)
+    def value(self, rho: Any) -> Any:
+        """J of the density flow ``rho`` (K+1, *shape)."""
+        return self.face_action(self.face_terms(rho), "control")
 
     def free_energy(self, rho: np.ndarray) -> np.ndarray:
         r""":math:`F(\rho) = \frac{\sigma^2}{2}\int f(\rho) + \int U\rho + \frac12\iint W\rho\rho`
