@@ -22,7 +22,7 @@ from __future__ import annotations
 import importlib
 from abc import ABC, abstractmethod
 from collections.abc import Callable
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, fields, is_dataclass
 from typing import Any, ClassVar
 
 import numpy as np
@@ -92,6 +92,11 @@ def _nonnegative(value: Any, name: str) -> float:
 
 
 def _params(obj: Any) -> dict[str, Any]:
+    """Fields of a dataclass potential; for any other class its public attributes of simple
+    types (a user's subclass need not be a dataclass)."""
+    if not is_dataclass(obj):
+        return {k: v for k, v in vars(obj).items() if not k.startswith("_")
+                and (v is None or isinstance(v, (bool, int, float, str)))}
     out: dict[str, Any] = {}
     for f in fields(obj):
         v = getattr(obj, f.name)
@@ -165,8 +170,9 @@ class Confinement(ABC):
         """∇U(x) for points x of shape (..., d); returns shape (..., d)."""
 
     def describe(self) -> dict[str, Any]:
-        """Registry name and parameters as a plain dict (for run summaries)."""
-        return {"name": self.name, **_params(self)}
+        """Registry name (or class path) and parameters as a plain dict (for run summaries)."""
+        cls = type(self)
+        return {"name": self.name or f"{cls.__module__}.{cls.__qualname__}", **_params(self)}
 
 
 class Interaction(ABC):
@@ -188,8 +194,9 @@ class Interaction(ABC):
         """∇W(z) for separations z of shape (..., d); returns shape (..., d)."""
 
     def describe(self) -> dict[str, Any]:
-        """Registry name and parameters as a plain dict (for run summaries)."""
-        return {"name": self.name, **_params(self)}
+        """Registry name (or class path) and parameters as a plain dict (for run summaries)."""
+        cls = type(self)
+        return {"name": self.name or f"{cls.__module__}.{cls.__qualname__}", **_params(self)}
 
 
 # --------------------------------------------------------------------------- confinements
@@ -551,7 +558,8 @@ class TorchInteraction(Interaction):
     """User pair potential W given as a torch function; ∇W by ``torch.autograd`` in float64.
 
     With ``radial=False`` ``fn`` maps separations z (..., d) to W(z) (...) and must itself be
-    even, W(-z) = W(z) (this is not enforced).  With ``radial=True`` ``fn`` maps distances
+    even, W(-z) = W(z) (checked on a few points when a problem is built:
+    :mod:`mfbridge.model.potential_checks`).  With ``radial=True`` ``fn`` maps distances
     r = |z| (...) to W (...), which is even by construction; r is computed so that the
     gradient at z = 0 is exactly 0 (never NaN) and the value there is fn(0).
     ``fn`` may be a callable or an import path as for :class:`TorchConfinement`.

@@ -10,6 +10,7 @@ import numpy as np
 from mfbridge.errors import InputError
 from mfbridge.model.endpoints import endpoint_masses
 from mfbridge.model.grid import Grid
+from mfbridge.model.potential_checks import as_confinement, as_interaction
 from mfbridge.model.potentials import Confinement, Interaction, NoConfinement, NoInteraction
 
 
@@ -48,16 +49,10 @@ class BridgeProblem:
         if isinstance(steps, bool) or not isinstance(steps, (int, np.integer)) or steps < 1:
             raise InputError(f"steps must be a positive integer, got {steps!r}")
         object.__setattr__(self, "steps", int(steps))
-        if not isinstance(self.confinement, Confinement):
-            raise InputError(
-                f"confinement must be a mfbridge.model.potentials.Confinement, "
-                f"got {self.confinement!r}"
-            )
-        if not isinstance(self.interaction, Interaction):
-            raise InputError(
-                f"interaction must be a mfbridge.model.potentials.Interaction, "
-                f"got {self.interaction!r}"
-            )
+        # any object with value/grad, checked on a few points of the box (potential_checks)
+        box = (np.asarray(self.grid.lower), np.asarray(self.grid.upper))
+        object.__setattr__(self, "confinement", as_confinement(self.confinement, *box))
+        object.__setattr__(self, "interaction", as_interaction(self.interaction, *box))
         for name in ("initial", "final"):
             object.__setattr__(self, name, endpoint_masses(getattr(self, name), self.grid, name))
 
