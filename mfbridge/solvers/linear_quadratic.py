@@ -175,31 +175,40 @@ class LQBridge:
             raise InputError(f"time index must be an integer in [{-n}, {n - 1}], got {k!r}")
         return int(k)
 
-    def _points(self, x: Any) -> np.ndarray:
+    def _points(self, x: Any) -> tuple[np.ndarray, bool]:
+        """Points of shape (..., d), and whether they were given as bare positions: in 1D a
+        scalar or an array whose last axis is not of length 1 is a set of positions (..., )."""
         try:
             arr = np.asarray(x, dtype=float)
         except (TypeError, ValueError) as exc:
             raise InputError(f"points must be a real array of shape (..., {self.dim})") from exc
+        if self.dim == 1 and (arr.ndim == 0 or arr.shape[-1] != 1):
+            return arr[..., None], True
         if arr.ndim == 0 or arr.shape[-1] != self.dim:
             raise InputError(
                 f"points must have shape (..., {self.dim}) (last axis = dimension), "
                 f"got shape {arr.shape}"
             )
-        return arr
+        return arr, False
 
     def control(self, k: int, x: np.ndarray) -> np.ndarray:
-        """Control ``u_{t_k}(x) = ū(t_k) + A_{t_k}(x - m_{t_k})``; ``x (..., d)`` → ``(..., d)``."""
+        """Control ``u_{t_k}(x) = ū(t_k) + A_{t_k}(x - m_{t_k})``; ``x (..., d)`` → ``(..., d)``.
+
+        In 1D ``x`` may also be a scalar or an array of positions of any shape (last axis not of
+        length 1); the control then has the shape of ``x``."""
         k = self._index(k)
-        arr = self._points(x)
-        return self.mean_control[k] + (arr - self.mean[k]) @ self.gain[k].T
+        arr, bare = self._points(x)
+        out = self.mean_control[k] + (arr - self.mean[k]) @ self.gain[k].T
+        return out[..., 0] if bare else out
 
     def density(self, k: int, x: np.ndarray) -> np.ndarray:
         """Gaussian density of ``ρ_{t_k} = N(m, S)`` at ``x`` ``(..., d)`` → ``(...)``.
 
-        ``ρ(x) = (2π)^{-d/2} det(S)^{-1/2} exp(-½ (x-m)ᵀ S⁻¹ (x-m))``.
+        ``ρ(x) = (2π)^{-d/2} det(S)^{-1/2} exp(-½ (x-m)ᵀ S⁻¹ (x-m))``. In 1D ``x`` may also be
+        a scalar or an array of positions (see :meth:`control`); the density has its shape.
         """
         k = self._index(k)
-        arr = self._points(x)
+        arr, _ = self._points(x)
         d = self.dim
         chol = np.linalg.cholesky(self.cov[k])
         diff = (arr - self.mean[k]).reshape(-1, d).T
