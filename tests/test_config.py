@@ -21,6 +21,26 @@ from mfbridge.model.potentials import Harmonic, HarmonicInteraction
 from mfbridge.runs.api import CONF_DIR, GROUPS
 from mfbridge.solvers.direct import DirectOptions
 
+# Options with required values (??? in conf/): what a user must add on the command line.
+REQUIRED: dict[str, list[str]] = {
+    "endpoints=samples": ["endpoints.initial.path=examples/data/chemotaxis_end.npz",
+                          "endpoints.final.path=examples/data/chemotaxis_end.npz"],
+    "interaction=torch": ["interaction.fn=tests.test_config:soft_core"],
+    "confinement=torch": ["confinement.fn=tests.test_config:trap"],
+}
+
+
+def soft_core(r: Any) -> Any:
+    """A torch pair potential of the distance r (the interaction=torch option's test fn)."""
+    import torch
+
+    return torch.exp(-r * r)
+
+
+def trap(x: Any) -> Any:
+    """A torch confinement of the positions x (..., d) (the confinement=torch option's)."""
+    return 0.5 * (x * x).sum(-1)
+
 
 def _options(group: str) -> list[str]:
     return sorted(path.stem for path in (CONF_DIR / group).glob("*.yaml"))
@@ -34,7 +54,8 @@ def _grid_dim(option: str) -> int:
 
 @cache
 def _endpoint_dim(option: str) -> int:
-    endpoints = instantiate(compose([f"endpoints={option}"]).endpoints)
+    choice = f"endpoints={option}"
+    endpoints = instantiate(compose([choice, *REQUIRED.get(choice, [])]).endpoints)
     dims = {endpoints["initial"].dim, endpoints["final"].dim}
     assert len(dims) == 1, f"endpoints={option} mixes dimensions {dims}"
     return dims.pop()
@@ -62,7 +83,7 @@ def test_every_group_has_options_on_disk() -> None:
 
 @pytest.mark.parametrize(("group", "option"), ALL_OPTIONS, ids=[f"{g}={o}" for g, o in ALL_OPTIONS])
 def test_every_option_composes_and_builds(group: str, option: str) -> None:
-    overrides = [f"{group}={option}"]
+    overrides = [f"{group}={option}", *REQUIRED.get(f"{group}={option}", [])]
     if group == "endpoints":
         dim = _endpoint_dim(option)
         if dim != 1:

@@ -115,7 +115,7 @@ def test_bad_options():
 
 
 def test_config_dispatches_to_the_direct_solver():
-    cfg = compose(["solver=direct", "mobility@solver.mobility=exclusion",
+    cfg = compose(["solver=direct", "mobility=exclusion",
                    "solver.total_mass=0.3", "grid.shape=48", "steps=4"])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")

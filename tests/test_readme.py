@@ -125,7 +125,7 @@ def test_python_blocks_run_all(tmp_path, monkeypatch):
 
 def test_command_lines_compose():
     """Every mfbridge solve command of the README composes (valid groups, options, keys)."""
-    from mfbridge.api import compose
+    from mfbridge.runs.api import compose
 
     checked = 0
     for block in BLOCKS:
@@ -232,8 +232,8 @@ def _sessions(block: Block) -> list[tuple[str, list[str]]]:
 def test_demo_output_is_current(tmp_path, monkeypatch, caplog):
     """The default scenario's quoted log (before: 13 iterations, J = 3.3883292 quoted while the
     demo printed 12 and 3.3894208). Solved in-process: the log lines are those of the CLI."""
-    from mfbridge.api import compose
-    from mfbridge.cli import run
+    from mfbridge.runs.api import compose
+    from mfbridge.runs.cli import run
 
     blocks = _output_blocks(slow=False)
     assert blocks, "README has no fast output block"

@@ -129,7 +129,14 @@ def resolve_callable(fn: Callable[..., Any] | str, what: str = "fn") -> Callable
     try:
         obj: Any = importlib.import_module(module_name)
     except ImportError as exc:
-        raise InputError(f"{what} {fn!r}: cannot import module {module_name!r} ({exc})") from exc
+        import os
+
+        raise InputError(
+            f"{what} {fn!r}: cannot import module {module_name!r} ({exc}); modules are looked "
+            f"up on Python's path (installed packages) and, by the mfbridge command, in the "
+            f"working directory {os.getcwd()}: put {module_name.split('.')[0]}.py there or "
+            "install its package"
+        ) from exc
     for part in attr_path.split("."):
         try:
             obj = getattr(obj, part)

@@ -46,6 +46,11 @@ def compose(overrides: Sequence[str] | None = None, config_name: str = "config")
     from omegaconf.errors import OmegaConfBaseException
 
     overrides = list(overrides or [])
+    from mfbridge.runs.config_checks import override_mistakes
+
+    mistakes = override_mistakes(overrides)
+    if mistakes:
+        raise InputError("; ".join(mistakes))
     try:
         with initialize_config_dir(config_dir=str(CONF_DIR), version_base="1.3"):
             return hydra_compose(config_name=config_name, overrides=overrides)
@@ -120,6 +125,9 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
     ``warm_start`` entry is read by the command line (:mod:`mfbridge.runs.cli`), not here."""
     from omegaconf import OmegaConf
 
+    from mfbridge.runs.config_checks import check_config
+
+    check_config(cfg)
     problem = build_problem(cfg)
     options = _build(cfg, "solver")
     if type(options).__name__ == "DirectOptions":

@@ -30,6 +30,7 @@ in its folder, and the sweep goes on with the other jobs (``mfbridge collect`` l
 from __future__ import annotations
 
 import logging
+import os
 import sys
 import time
 from dataclasses import asdict
@@ -215,12 +216,33 @@ SUBCOMMANDS: dict[str, str] = {
 
 
 def main() -> None:
-    """Console entry point (``mfbridge``)."""
+    """Console entry point (``mfbridge``, ``python -m mfbridge``)."""
+    if sys.argv[1:] in (["--help"], ["-h"], ["help"]):
+        from mfbridge.runs.cli_help import help_text
+
+        sys.stdout.write(help_text())
+        sys.exit(0)
+    if sys.argv[1:] in (["--version"], ["-V"]):
+        from mfbridge.runs.cli_help import version_text
+
+        sys.stdout.write(version_text())
+        sys.exit(0)
+    # user modules named in the config (_target_=mypot.MyPair, interaction.fn=mypot:f) are
+    # found in the working directory, as data files are; last, so they shadow nothing
+    if os.getcwd() not in sys.path:
+        sys.path.append(os.getcwd())
     if len(sys.argv) > 1 and sys.argv[1] in SUBCOMMANDS:
         import importlib
 
         module = importlib.import_module(SUBCOMMANDS[sys.argv[1]])
         sys.exit(module.main(sys.argv[2:]))
+
+    from mfbridge.runs.config_checks import override_mistakes
+
+    mistakes = override_mistakes(sys.argv[1:])
+    if mistakes:
+        sys.stderr.write("".join(f"mfbridge: error: {m}\n" for m in mistakes))
+        sys.exit(2)
 
     import hydra
     from hydra.core.hydra_config import HydraConfig

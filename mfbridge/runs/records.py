@@ -6,7 +6,8 @@ written by :func:`mfbridge.runs.cli.run` holds
 * ``record.json``: the resolved configuration, the command-line overrides and config-group
   choices (when run through Hydra), versions of Python and the numerical packages, the git
   commit of the mfbridge checkout (and whether it had uncommitted changes), seeds, SHA-256
-  hashes of input data files named in the config, start and finish times, the status, and the
+  hashes of the input data files and user modules named in the config, start and finish
+  times, the status, and the
   error of a failed run;
 * ``complete.json``: the completion marker, written last, with SHA-256 hashes of the result,
   the summary and the record. A folder without it (a run killed or failed midway) is never
@@ -27,6 +28,7 @@ import json
 import logging
 import math
 import platform
+import re
 import subprocess
 import sys
 from dataclasses import asdict, dataclass, field
@@ -58,7 +60,8 @@ class RunRecord:
 
     ``overrides`` are the Hydra task overrides (``["interaction.strength=2", ...]``) and
     ``choices`` the selected option of every config group, both ``None`` outside Hydra;
-    ``inputs`` maps each data file named in the config to its absolute path and SHA-256;
+    ``inputs`` maps each data file and user module named in the config to its absolute path
+    and SHA-256 (modules also to their ``module`` name);
     ``git`` is ``{"commit": ..., "dirty": ...}`` or ``None`` when mfbridge is not in a checkout;
     ``warm_start`` is a :class:`WarmStart` as a dict (which run started the solver, or why none
     did; ``None`` in records written before warm starts existed).
@@ -143,10 +146,17 @@ def sha256(path: str | Path) -> str:
 
 
 def input_files(config: Any, base: str | Path | None = None) -> dict[str, dict[str, str]]:
-    """Every string value of ``config`` (nested dicts and lists) that names an existing file
-    (relative names are taken from ``base``, default the working directory), with its absolute
-    path and SHA-256, keyed by the dotted config key."""
-    root = Path(base) if base is not None else Path.cwd()
+    """The user's inputs named in ``config`` (nested dicts and lists), keyed by the dotted
+    config key, each with its absolute ``path`` and ``sha256``:
+
+    * every string value that names an existing file, looked up as the data files are: from
+      ``base`` (default the working directory), then from the mfbridge repository root;
+    * every module named by a ``_target_`` or an import path (``"mymod:fn"``,
+      ``"mypkg.mymod.fn"``) that is not part of mfbridge, with its source file and ``module``.
+    """
+    from mfbridge.model.sample_files import REPO_ROOT
+
+    roots = [Path(base) if base is not None else Path.cwd(), REPO_ROOT]
     found: dict[str, dict[str, str]] = {}
 
     def walk(node: Any, key: str) -> None:
@@ -158,16 +168,65 @@ def input_files(config: Any, base: str | Path | None = None) -> dict[str, dict[s
                 walk(v, f"{key}[{i}]")
         elif isinstance(node, str) and node and "\n" not in node and len(node) < 4096:
             path = Path(node).expanduser()
-            path = path if path.is_absolute() else root / path
-            try:
-                is_file = path.is_file()
-            except OSError:
-                is_file = False
-            if is_file:
-                found[key] = {"path": str(path.resolve()), "sha256": sha256(path)}
+            for place in [path] if path.is_absolute() else [r / path for r in roots]:
+                try:
+                    is_file = place.is_file()
+                except OSError:
+                    is_file = False
+                if is_file:
+                    found[key] = {"path": str(place.resolve()), "sha256": sha256(place)}
+                    return
+            module = user_module(node)
+            if module is not None:
+                found[key] = {"module": module[0], "path": str(module[1]),
+                              "sha256": sha256(module[1])}
 
     walk(config, "")
     return found
+
+
+_IMPORT_PATH = re.compile(r"^[A-Za-z_]\w*(\.[A-Za-z_]\w*)*(:[A-Za-z_][\w.]*)?$")
+
+
+def user_module(text: str) -> tuple[str, Path] | None:
+    """``(module name, source file)`` of the module an import path names (``"pkg.mod:attr"``,
+    ``"pkg.mod.attr"``, a ``_target_``), when it is a file outside the mfbridge package and
+    the standard library; else ``None``. Nothing is imported but parent packages."""
+    import importlib.util
+    import sysconfig
+
+    if not _IMPORT_PATH.match(text) or ("." not in text and ":" not in text):
+        return None
+    parts = text.partition(":")[0].split(".")
+    package_dir = Path(__file__).resolve().parents[1]  # the mfbridge package
+    stdlib = Path(sysconfig.get_paths()["stdlib"]).resolve()
+    for n in range(len(parts), 0, -1):
+        name = ".".join(parts[:n])
+        try:
+            spec = importlib.util.find_spec(name)
+        except (ImportError, ValueError, AttributeError):
+            spec = None
+        if spec is None or not spec.origin or not spec.has_location:
+            continue
+        origin = Path(spec.origin).resolve()
+        if (not origin.is_file() or package_dir in origin.parents
+                or (stdlib in origin.parents and "site-packages" not in origin.parts)):
+            return None
+        return name, origin
+    return None
+
+
+def changed_inputs(recorded: dict[str, dict[str, str]]) -> list[str]:
+    """One line for each recorded input file whose bytes differ now, or that is gone."""
+    lines = []
+    for key, entry in sorted(recorded.items()):
+        path = Path(entry.get("path", ""))
+        what = f"module {entry['module']}" if entry.get("module") else "data file"
+        if not path.is_file():
+            lines.append(f"{key}: {what} {path} is missing")
+        elif sha256(path) != entry.get("sha256"):
+            lines.append(f"{key}: {what} {path} changed since the run (SHA-256 differs)")
+    return lines
 
 
 def hydra_job() -> tuple[list[str] | None, dict[str, str] | None, dict[str, Any] | None]:

@@ -114,6 +114,19 @@ def _recorded_warm_start(warm: dict[str, Any] | None) -> str:
     return "none"
 
 
+def _module_dirs(inputs: dict[str, dict[str, str]]) -> None:
+    """Make the recorded user modules importable from any working directory (appended to
+    ``sys.path``: their folders, as seen when the run was made)."""
+    for entry in inputs.values():
+        module, path = entry.get("module"), Path(entry.get("path", ""))
+        if not module or not path.is_file():
+            continue
+        depth = module.count(".") + (1 if path.name == "__init__.py" else 0)
+        folder = str(path.parents[depth])
+        if folder not in sys.path:
+            sys.path.append(folder)
+
+
 def replay(run_dir: Path, out: Path | None, tol: float, figures: bool) -> int:
     """Replay ``run_dir`` into ``out``; print the comparison and verdict; return the exit code."""
     from omegaconf import OmegaConf
@@ -143,6 +156,10 @@ def replay(run_dir: Path, out: Path | None, tol: float, figures: bool) -> int:
     if changed:
         print(f"warning: {', '.join(changed)} in {run_dir} changed after the run "
               f"(SHA-256 differs from {records.COMPLETE_FILE})")
+    inputs = records.changed_inputs(record.inputs)
+    for line in inputs:
+        print(f"warning: input {line}")
+    _module_dirs(record.inputs)
     cfg = OmegaConf.create(record.config)
     cfg.figures = bool(figures)
     cfg.warm_start = _recorded_warm_start(record.warm_start)
@@ -162,6 +179,9 @@ def replay(run_dir: Path, out: Path | None, tol: float, figures: bool) -> int:
         return 0
     print(f"verdict: DIFFERENT: the replay differs from the stored result beyond tolerance "
           f"{tol:g}")
+    if inputs:
+        print("inputs changed since the run (a likely cause): "
+              + "; ".join(line.partition(": ")[0] for line in inputs))
     return 1
 
 

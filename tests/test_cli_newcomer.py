@@ -1,0 +1,189 @@
+"""A new user's first hour on the command line (issue 15, items 1, 3, 4, 5).
+
+Subprocess tests run the installed console script (the venv's ``mfbridge``) and are kept few
+and tiny; the rest calls the same functions in-process.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from mfbridge.runs.api import compose
+from mfbridge.runs.config_checks import check_config
+from mfbridge.errors import InputError
+
+ROOT = Path(__file__).resolve().parent.parent
+SCRIPT = Path(sys.executable).with_name("mfbridge")
+
+
+def _mfbridge(*args: str, cwd: Path, timeout: float = 300) -> subprocess.CompletedProcess[str]:
+    env = {**os.environ, "OPENBLAS_NUM_THREADS": "1"}
+    return subprocess.run([str(SCRIPT), *args], cwd=cwd, env=env, text=True,
+                          capture_output=True, timeout=timeout, check=False)
+
+
+# ------------------------------------------------------------------ item 5: help and version
+
+
+def test_help(tmp_path):
+    """Before: Hydra's stock help (no subcommands, no docs) and Hydra's version."""
+    done = _mfbridge("--help", cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    text = done.stdout
+    for word in ("check RUN_DIR", "collect SWEEP_DIR", "replay RUN_DIR", "README.md",
+                 "length/√time", "mfbridge --version"):
+        assert word in text
+    for group in ("grid", "confinement", "interaction", "endpoints", "mobility", "solver"):
+        options = sorted(p.stem for p in (ROOT / "conf" / group).glob("*.yaml"))
+        assert f"\n  {group}\n" in text
+        for option in options:
+            assert f" {option} " in text or f"*{option} " in text, (group, option)
+    assert "*optimal" in text and "*line" in text  # defaults marked
+
+
+def test_version(monkeypatch, capsys):
+    """The console script's own function, in-process (before: Hydra's version)."""
+    from mfbridge.runs.cli import main
+
+    monkeypatch.setattr(sys, "argv", ["mfbridge", "--version"])
+    with pytest.raises(SystemExit) as done:
+        main()
+    assert done.value.code == 0
+    out = capsys.readouterr().out
+    assert out.startswith("mfbridge 0.1.0\n") and "hydra-core" in out
+
+
+# ------------------------------------------------------------------ item 1: groups in place
+
+
+def test_group_given_where_it_has_no_effect_is_refused(tmp_path):
+    """Before: `+mobility=exclusion solver=direct` solved with the walkers mobility."""
+    done = _mfbridge("+mobility=exclusion", "solver=direct", cwd=tmp_path)
+    assert done.returncode == 2
+    assert "write mobility=exclusion" in done.stderr
+    assert not any(tmp_path.iterdir())  # refused before any run folder
+
+
+def test_mobility_option_reaches_the_direct_solver():
+    from hydra.utils import instantiate
+
+    from mfbridge.model.mobility import Exclusion
+
+    options = instantiate(compose(["solver=direct", "mobility=exclusion"]).solver)
+    assert isinstance(options.mobility, Exclusion)
+    with pytest.raises(InputError, match="write mobility=exclusion"):
+        compose(["solver=direct", "mobility@solver.mobility=exclusion"])
+
+
+@pytest.mark.parametrize(("overrides", "words"), [
+    (["mobility=exclusion"], ["no effect with solver=optimal", "solver=direct mobility=exclusion"]),
+    (["+colour=red"], ["colour", "not read by mfbridge"]),
+    (["interaction=torch"], ["interaction.fn", "required"]),
+])
+def test_settings_without_effect_are_refused(overrides, words):
+    with pytest.raises(InputError) as info:
+        check_config(compose(overrides))
+    for word in words:
+        assert word in str(info.value)
+
+
+# ------------------------------------------------------------------ item 4: own data files
+
+
+def _write_csv(path: Path, rows: np.ndarray, header: str) -> None:
+    np.savetxt(path, rows, delimiter=",", header=header, comments="")
+
+
+def test_own_csv_mismatches_reported_at_once(tmp_path, monkeypatch):
+    """Before: three runs, three messages (key, weights column, columns), one at a time."""
+    monkeypatch.chdir(tmp_path)
+    rng = np.random.default_rng(0)
+    _write_csv(tmp_path / "start.csv", rng.normal(-1, 0.5, (200, 2)), "x,y")
+    _write_csv(tmp_path / "end.csv", rng.normal(1, 0.5, (150, 2)), "x,y")
+    paths = ["endpoints.initial.path=start.csv", "endpoints.final.path=end.csv"]
+    with pytest.raises(InputError) as info:
+        check_config(compose(["endpoints=from_samples", *paths]))
+    message = str(info.value)
+    fixes = ["endpoints.initial.weights=null", "endpoints.initial.columns=[x,y]",
+             "endpoints.final.key=null"]
+    for fix in fixes:
+        assert fix in message
+    # the suggested overrides fix it; so does the samples preset with only the two paths
+    check_config(compose(["endpoints=from_samples", *paths, *fixes]))
+    cfg = compose(["endpoints=samples", *paths])
+    check_config(cfg)
+    from mfbridge.runs.api import build_problem
+
+    assert build_problem(cfg).grid.dim == 2
+
+
+# ------------------------------------------------------------------ item 3: user modules
+
+
+MYPOT = """import torch
+
+def soft_repulsion(r):
+    return {strength} * torch.exp(-r * r / 0.5)
+"""
+
+
+def test_user_module_in_working_directory_is_found_and_recorded(tmp_path, monkeypatch,
+                                                                 capsys):
+    """Before: "cannot import module 'mypot'"; the module was not in record.json, and replay
+    said DIFFERENT without naming the edited module."""
+    (tmp_path / "mypot.py").write_text(MYPOT.format(strength=1.0))
+    run = tmp_path / "run"
+    done = _mfbridge("interaction=torch", "interaction.fn=mypot:soft_repulsion",
+                     "grid.shape=32", "steps=6", "figures=false", f"hydra.run.dir={run}",
+                     cwd=tmp_path)
+    assert done.returncode == 0, done.stderr + done.stdout
+    record = json.loads((run / "record.json").read_text())
+    entry = record["inputs"]["interaction.fn"]
+    assert entry["module"] == "mypot"
+    assert Path(entry["path"]) == (tmp_path / "mypot.py").resolve()
+    import hashlib
+
+    assert entry["sha256"] == hashlib.sha256((tmp_path / "mypot.py").read_bytes()).hexdigest()
+
+    (tmp_path / "mypot.py").write_text(MYPOT.format(strength=2.0))
+    from mfbridge.runs.commands.replay import replay
+
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    monkeypatch.chdir(elsewhere)  # the recorded module is found from anywhere
+    monkeypatch.setattr(sys, "path", list(sys.path))
+    monkeypatch.delitem(sys.modules, "mypot", raising=False)
+    try:
+        code = replay(run, tmp_path / "replay", 1e-9, False)
+    finally:
+        sys.modules.pop("mypot", None)
+    out = capsys.readouterr().out
+    assert code == 1
+    assert "interaction.fn: module mypot" in out and "changed since the run" in out
+    assert "inputs changed since the run (a likely cause): interaction.fn" in out
+
+
+def test_data_file_found_in_repository_is_recorded(tmp_path):
+    """Before: `inputs` was {} when the demo files were found through the repository."""
+    from mfbridge.runs.records import input_files
+
+    config = {"endpoints": {"initial": {"path": "examples/data/chemotaxis_start.csv"}}}
+    found = input_files(config, base=tmp_path)
+    assert Path(found["endpoints.initial.path"]["path"]) == (
+        ROOT / "examples/data/chemotaxis_start.csv").resolve()
+    assert input_files({"interaction": {"_target_": "mfbridge.model.potentials.GaussianCore"}}) == {}
+
+
+def test_unimportable_module_message_names_the_working_directory(tmp_path, monkeypatch):
+    from mfbridge.model.potentials import resolve_callable
+
+    monkeypatch.chdir(tmp_path)
+    with pytest.raises(InputError, match="working directory"):
+        resolve_callable("nosuchmodule_xyz:f")
