@@ -187,3 +187,49 @@ def test_unimportable_module_message_names_the_working_directory(tmp_path, monke
     monkeypatch.chdir(tmp_path)
     with pytest.raises(InputError, match="working directory"):
         resolve_callable("nosuchmodule_xyz:f")
+
+
+# ------------------------------------------------------------------ item 8: job folder names
+
+
+def test_job_folder_names_are_short_and_stable():
+    """Before: sweeps over data files nested folders and names of 300+ characters."""
+    from mfbridge.records import JOB_DIR_CHARS, job_dir_name
+
+    plain = "figures=False,grid.shape=32,interaction.strength=1,steps=8"
+    assert job_dir_name(plain) == plain  # short sweeps keep readable names
+    long_path = "/data/" + "deep/" * 60 + "session_2024_cells.csv"
+    name = job_dir_name(f"endpoints.initial.path={long_path},interaction.strength=1")
+    assert "/" not in name and len(name) <= JOB_DIR_CHARS
+    assert name.startswith("endpoints.initial.path=session_2024_cel")
+    assert name.endswith(",interaction.strength=1")
+    assert name == job_dir_name(f"endpoints.initial.path={long_path},interaction.strength=1")
+    other = job_dir_name(f"endpoints.initial.path={long_path[:-5]}2.csv,interaction.strength=1")
+    assert other != name  # different files, different folders
+    many = ",".join(f"solver.option{i}=value{i}" for i in range(20))
+    assert job_dir_name(many).startswith("job-") and len(job_dir_name(many)) == 14
+
+
+@pytest.mark.slow
+def test_sweep_over_data_files_names_jobs_by_short_ids(tmp_path):
+    rng = np.random.default_rng(1)
+    deep = tmp_path / ("long_folder_name_" * 4) / "more"
+    deep.mkdir(parents=True)
+    files = []
+    for i in range(2):
+        path = deep / f"start_{i}.csv"
+        _write_csv(path, rng.normal(-1 + 0.2 * i, 0.5, (150, 1)), "x")
+        files.append(str(path))
+    _write_csv(tmp_path / "end.csv", rng.normal(1, 0.5, (150, 1)), "x")
+    sweep = tmp_path / "sweep"
+    done = _mfbridge("-m", "endpoints=samples", f"endpoints.initial.path={files[0]},{files[1]}",
+                     "endpoints.final.path=end.csv", "steps=6", "figures=false",
+                     f"hydra.sweep.dir={sweep}", "hydra.launcher.n_jobs=1", cwd=tmp_path,
+                     timeout=900)
+    assert done.returncode == 0, done.stderr + done.stdout
+    jobs = sorted(p for p in sweep.iterdir() if p.is_dir())
+    assert len(jobs) == 2
+    for job in jobs:
+        assert len(job.name) <= 120 and "/" not in job.name and (job / "record.json").is_file()
+        record = json.loads((job / "record.json").read_text())
+        assert any(o.startswith("endpoints.initial.path=/") for o in record["overrides"])

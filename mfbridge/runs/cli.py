@@ -47,6 +47,8 @@ from mfbridge.runs.records import WarmStart
 from mfbridge.result import BridgeResult
 
 log = logging.getLogger("mfbridge")
+# ${mfbridge_job_dir:...} names sweep job folders; sweep workers import this module too
+records.register_resolvers()
 
 
 def _progress(it: Iteration) -> None:
@@ -73,7 +75,9 @@ def _multirun() -> Any:
 def _job_label() -> str | None:
     """``"#num override_dirname"`` of the running job of a Hydra multirun, else ``None``."""
     hc = _multirun()
-    return None if hc is None else f"#{hc.job.get('num')} {hc.job.override_dirname}".strip()
+    if hc is None:
+        return None
+    return f"#{hc.job.get('num')} {records.job_dir_name(hc.job.override_dirname)}".strip()
 
 
 def choose_warm_start(config: dict[str, Any], out: Path, sweep_dir: Path | None

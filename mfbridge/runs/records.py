@@ -390,6 +390,63 @@ def scan_sweep(sweep_dir: str | Path) -> list[RunEntry]:
     return entries
 
 
+#: Longest job folder name kept as Hydra writes it (``key=value,...``); longer ones, and any
+#: holding a path, are shortened by :func:`job_dir_name`.
+JOB_DIR_CHARS = 120
+_VALUE_CHARS = 24
+
+
+def _split_items(text: str) -> list[str]:
+    """Split Hydra's ``override_dirname`` at the commas outside brackets and quotes."""
+    items, depth, quote, start = [], 0, "", 0
+    for i, ch in enumerate(text):
+        if quote:
+            quote = "" if ch == quote else quote
+        elif ch in "'\"":
+            quote = ch
+        elif ch in "[{(":
+            depth += 1
+        elif ch in "]})":
+            depth -= 1
+        elif ch == "," and depth == 0:
+            items.append(text[start:i])
+            start = i + 1
+    items.append(text[start:])
+    return [item for item in items if item]
+
+
+def job_dir_name(override_dirname: str) -> str:
+    """The folder name of a sweep job from Hydra's ``override_dirname``: unchanged when short
+    and free of paths (``interaction.strength=1,steps=8``); else each value that is a path or
+    longer than 24 characters becomes ``<file stem>-<6 hex>`` (SHA-256 of the value), and a
+    name still over :data:`JOB_DIR_CHARS` characters becomes ``job-<10 hex>``. Stable: the same
+    overrides give the same name; ``record.json`` keeps the full overrides."""
+    text = str(override_dirname)
+    if len(text) <= JOB_DIR_CHARS and "/" not in text and "\\" not in text:
+        return text
+
+    def digest(value: str, n: int) -> str:
+        return hashlib.sha256(value.encode()).hexdigest()[:n]
+
+    items = []
+    for item in _split_items(text):
+        key, eq, value = item.partition("=")
+        if eq and ("/" in value or "\\" in value or len(value) > _VALUE_CHARS):
+            stem = re.sub(r"[^\w.-]", "", Path(value.replace("\\", "/")).stem)[:16]
+            value = f"{stem}-{digest(value, 6)}" if stem else digest(value, 6)
+        items.append(f"{key}{eq}{value}")
+    short = ",".join(items)
+    return short if len(short) <= JOB_DIR_CHARS else f"job-{digest(text, 10)}"
+
+
+def register_resolvers() -> None:
+    """Register ``${mfbridge_job_dir:...}`` (:func:`job_dir_name`) with OmegaConf (once)."""
+    from omegaconf import OmegaConf
+
+    if not OmegaConf.has_resolver("mfbridge_job_dir"):
+        OmegaConf.register_new_resolver("mfbridge_job_dir", job_dir_name)
+
+
 def expected_jobs(config: Any) -> list[list[str]] | None:
     """The override lists of the jobs a basic-sweeper multirun launches, from the task
     overrides of its (Hydra) ``config``; ``None`` when they cannot be worked out."""
