@@ -15,9 +15,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from mfbridge.errors import InputError
 from mfbridge.runs.api import compose
 from mfbridge.runs.config_checks import check_config
-from mfbridge.errors import InputError
 
 ROOT = Path(__file__).resolve().parent.parent
 SCRIPT = Path(sys.executable).with_name("mfbridge")

@@ -96,6 +96,20 @@ def noise_from_config(noise: Any, diffusion: Any) -> Any:
 
 def build_problem(cfg: Any) -> BridgeProblem:
     """Instantiate the grid, potentials and endpoints of ``cfg`` into a :class:`BridgeProblem`."""
+    return _problem_and_axes(cfg)[0]
+
+
+def _axis_names(endpoints: dict[str, Any]) -> list[str] | None:
+    """Column names of endpoint files with named columns (CSV/TSV, Parquet), else ``None``."""
+    for side in ("initial", "final"):
+        endpoint = endpoints[side]
+        if getattr(endpoint, "format", None) in ("csv", "parquet"):
+            return list(endpoint.data.labels)
+    return None
+
+
+def _problem_and_axes(cfg: Any) -> tuple[BridgeProblem, list[str] | None]:
+    """The problem of ``cfg`` and the names of its space axes (data-file columns) if any."""
     for key in (*GROUPS, "noise", "horizon", "steps"):
         if key not in cfg:
             raise InputError(f"the configuration has no {key!r} entry")
@@ -105,7 +119,7 @@ def build_problem(cfg: Any) -> BridgeProblem:
     from mfbridge.model.samples import check_same_dimension
 
     check_same_dimension(endpoints["initial"], endpoints["final"])
-    return BridgeProblem(
+    problem = BridgeProblem(
         grid=_build(cfg, "grid"),
         initial=endpoints["initial"],
         final=endpoints["final"],
@@ -115,20 +129,26 @@ def build_problem(cfg: Any) -> BridgeProblem:
         confinement=_build(cfg, "confinement"),
         interaction=_build(cfg, "interaction"),
     )
+    return problem, _axis_names(endpoints)
 
 
 def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
-          warm_start: BridgeResult | None = None) -> BridgeResult:
+          warm_start: BridgeResult | None = None,
+          direct_callback: Callable[[str, int, float, float], None] | None = None
+          ) -> BridgeResult:
     """Solve the bridge that ``cfg`` (from :func:`compose`) describes; the resolved config is
     stored in the result. ``warm_start``: a result on the same grid and steps that starts the
     fixed-point solver (see :func:`~mfbridge.solvers.fixed_point.solve_bridge`); the config's
-    ``warm_start`` entry is read by the command line (:mod:`mfbridge.runs.cli`), not here."""
+    ``warm_start`` entry is read by the command line (:mod:`mfbridge.runs.cli`), not here.
+    ``callback`` sees every outer iteration of the fixed-point solvers; ``direct_callback``
+    every iteration of the direct solver as ``(kind, iteration, J, largest gradient entry)``
+    with kind ``"Newton"`` or ``"L-BFGS"``."""
     from omegaconf import OmegaConf
 
     from mfbridge.runs.config_checks import check_config
 
     check_config(cfg)
-    problem = build_problem(cfg)
+    problem, axes = _problem_and_axes(cfg)
     options = _build(cfg, "solver")
     if type(options).__name__ == "DirectOptions":
         from mfbridge.solvers.direct import DirectOptions, solve_direct
@@ -138,18 +158,30 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
                 raise InputError("the direct solver takes no warm start from a result (it has "
                                  "its own: solver.warm_start=displacement)")
             progress = None
-            if callback is not None:
+            if direct_callback is not None:
+                # the direct solver's own rule: Newton in 1D unless method=lbfgs, L-BFGS in 2D
+                kind = "L-BFGS" if options.method == "lbfgs" or problem.grid.dim > 1 else "Newton"
+                report = direct_callback
+                count = {"last": 0, "offset": 0}
+
                 def progress(it: int, cost: float, grad: float) -> None:
-                    if it % 100 == 0:
-                        callback(Iteration(it, grad, 0.0, 0, 0.0))
+                    # Newton's barrier stages each count from 1: report the running total
+                    if it <= count["last"]:
+                        count["offset"] += count["last"]
+                    count["last"] = it
+                    report(kind, count["offset"] + it, cost, grad)
             result = solve_direct(problem, options, progress)
             result.config = OmegaConf.to_container(cfg, resolve=True)
+            if axes is not None:
+                result.model["axes"] = axes
             return result
     if not isinstance(options, SolverOptions):
         raise InputError("the solver group must build a mfbridge.solvers.fixed_point.SolverOptions or "
                          "a mfbridge.solvers.direct.DirectOptions")
     result = solve_bridge(problem, options, callback, warm_start=warm_start)
     result.config = OmegaConf.to_container(cfg, resolve=True)
+    if axes is not None:
+        result.model["axes"] = axes  # figures label the axes with the data files' columns
     return result
 
 

@@ -58,6 +58,22 @@ def _progress(it: Iteration) -> None:
     )
 
 
+class _DirectProgress:
+    """Log lines of the direct solver: every Newton iteration; L-BFGS iterations (thousands)
+    for the first 10, then every 100th or after 2 s of silence."""
+
+    def __init__(self) -> None:
+        self.start = self.last = time.perf_counter()
+
+    def __call__(self, kind: str, it: int, cost: float, grad: float) -> None:
+        now = time.perf_counter()
+        if kind == "L-BFGS" and it > 10 and it % 100 and now - self.last < 2.0:
+            return
+        self.last = now
+        log.info("%s iteration %4d: J = %.8g, largest gradient entry %.2e, %.1f s",
+                 kind, it, cost, grad, now - self.start)
+
+
 def _multirun() -> Any:
     """Hydra's config of the running job when it is a job of a multirun, else ``None``."""
     try:
@@ -179,7 +195,9 @@ def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None
         start = time.perf_counter()
         try:
             with threadpool_limits(limits=1):
-                result = solve(cfg, callback=_progress, warm_start=warm)
+                quiet = cfg.get("progress", True) is False
+                result = solve(cfg, callback=None if quiet else _progress, warm_start=warm,
+                               direct_callback=None if quiet else _DirectProgress())
                 result.save(out)
                 log.info("%s", result.message)
                 log.info("cost J = %.8g  (kinetic %.6g, drift %.6g, free-energy change %.6g)",
@@ -193,7 +211,8 @@ def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None
                 if cfg.get("figures", True):
                     from mfbridge.runs.plotting import plot_result
 
-                    for path in plot_result(result, out):
+                    for path in plot_result(result, out,
+                                            scale=cfg.get("density_scale", "auto")):
                         log.info("figure: %s", path)
         except BaseException as exc:
             record.status, record.error = "failed", f"{type(exc).__name__}: {exc}"

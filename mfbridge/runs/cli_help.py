@@ -24,6 +24,7 @@ SETTINGS: dict[str, str] = {
     "horizon": "time T between the two observations (time)",
     "steps": "number K of time steps on [0, T]",
     "figures": "write figures into the run folder (true/false)",
+    "density_scale": "colour scale of density figures: auto, linear or log",
     "warm_start": "auto, nearest, none or a run folder to start the solver from",
     "progress": "log solver progress lines (true/false; false: only the summary)",
 }

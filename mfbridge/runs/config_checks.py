@@ -19,6 +19,8 @@ from typing import Any
 from mfbridge.errors import InputError
 
 CONF_DIR = Path(__file__).resolve().parents[2] / "conf"
+#: Colour scales of the density figures (see mfbridge.runs.plotting).
+DENSITY_SCALES = ("auto", "linear", "log")
 
 
 def _primary() -> dict[str, Any]:
@@ -82,6 +84,13 @@ def check_config(cfg: Any) -> None:
             f"name, so it would have no effect); top-level entries are {', '.join(sorted(known))}. "
             "Choose a group's option with group=option, set a parameter with group.key=value"
         )
+    scale = cfg.get("density_scale", "auto")
+    if scale not in DENSITY_SCALES:
+        raise InputError(f"density_scale must be one of {', '.join(DENSITY_SCALES)}, got "
+                         f"{scale!r}: e.g. density_scale=log")
+    progress = cfg.get("progress", True)
+    if not isinstance(progress, bool):
+        raise InputError(f"progress must be true or false, got {progress!r}")
     mobility = cfg.get("mobility")
     target = mobility.get("_target_") if hasattr(mobility, "get") else None
     solver = cfg.get("solver")

@@ -11,41 +11,95 @@ from pathlib import Path
 import matplotlib
 
 matplotlib.use("Agg")
+import matplotlib.colors
 import matplotlib.pyplot as plt
+import matplotlib.ticker
 import numpy as np
 
 from mfbridge.result import BridgeResult
 
+SCALES = ("auto", "linear", "log")
+LOG_RANGE = 1e-4
+"""Log colour scales show densities from LOG_RANGE × the largest one up."""
+AUTO_LOG_RATIO = 10.0
+"""``scale="auto"`` is log when the peak densities of the snapshots differ by more than this."""
+
 
 def _title(result: BridgeResult) -> str:
-    return (f"{result.method} bridge, σ = {result.noise:g}, T = {result.horizon:g}:  "
+    """Method, mobility and total mass (direct solver), noise, horizon and cost."""
+    model = result.model or {}
+    extra = ""
+    mobility = model.get("mobility")
+    if isinstance(mobility, dict) and mobility.get("name"):
+        extra = f" ({mobility['name']} mobility, total mass {model.get('total_mass', 1.0):g})"
+    return (f"{result.method} bridge{extra}, σ = {result.noise:g}, T = {result.horizon:g}:  "
             f"J = {result.cost:.5g}")
 
 
-def plot_density_1d(result: BridgeResult, path: Path) -> Path:
-    """Heat map of ρ(t, x) with the observed μ and ν drawn beside it, and the mean ± std."""
+def axis_names(result: BridgeResult) -> list[str]:
+    """Names of the space axes: the data files' column names when the run read named columns
+    (``result.model["axes"]``), else x (1D) or x0, x1, x2."""
+    names = (result.model or {}).get("axes")
+    if isinstance(names, list) and len(names) == result.grid.dim:
+        return [str(n) for n in names]
+    return ["x"] if result.grid.dim == 1 else [f"x{a}" for a in range(result.grid.dim)]
+
+
+def _norm(result: BridgeResult, values: np.ndarray, scale: str) -> matplotlib.colors.Normalize:
+    """One colour scale for all ``values`` (densities ≥ 0): linear from 0, or log over
+    LOG_RANGE decades; ``auto`` is log when the snapshots' peaks differ by > AUTO_LOG_RATIO."""
+    if scale not in SCALES:
+        raise ValueError(f"scale must be one of {', '.join(SCALES)}, got {scale!r}")
+    vmax = float(np.max(values)) if values.size else 1.0
+    vmax = vmax if vmax > 0 else 1.0
+    if scale == "auto":
+        peaks = result.density.reshape(len(result.density), -1).max(axis=1)
+        positive = peaks[peaks > 0]
+        wide = positive.size and positive.max() > AUTO_LOG_RATIO * positive.min()
+        scale = "log" if wide else "linear"
+    if scale == "log":
+        return matplotlib.colors.LogNorm(vmin=LOG_RANGE * vmax, vmax=vmax, clip=True)
+    return matplotlib.colors.Normalize(vmin=0.0, vmax=vmax)
+
+
+def _density_label(norm: matplotlib.colors.Normalize, result: BridgeResult) -> str:
+    unit = "1/length" if result.grid.dim == 1 else f"1/length^{result.grid.dim}"
+    log = " (log scale)" if isinstance(norm, matplotlib.colors.LogNorm) else ""
+    return f"density ρ ({unit}){log}"
+
+
+def plot_density_1d(result: BridgeResult, path: Path, scale: str = "auto") -> Path:
+    """Heat map of ρ(t, x) with the observed μ and ν drawn beside it, and the mean ± std;
+    ``scale``: ``linear``, ``log`` or ``auto`` (see :func:`_norm`)."""
     x = result.grid.axes[0]
     t = result.times
+    name = axis_names(result)[0]
     fig, (ax_mu, ax, ax_nu) = plt.subplots(
-        1, 3, figsize=(10, 4.2), sharey=True, gridspec_kw={"width_ratios": [1, 4, 1]}
+        1, 3, figsize=(10, 4.4), sharey=True, gridspec_kw={"width_ratios": [1, 4, 1]},
+        layout="constrained",
     )
-    mesh = ax.pcolormesh(t, x, result.density.T, shading="auto", cmap="viridis")
+    norm = _norm(result, result.density, scale)
+    mesh = ax.pcolormesh(t, x, result.density.T, shading="auto", cmap="viridis", norm=norm)
     mean = result.mean[:, 0]
     std = np.sqrt(result.cov[:, 0, 0])
     ax.plot(t, mean, color="white", lw=1.5, label="mean")
     ax.plot(t, mean + std, color="white", lw=0.8, ls="--", label="mean ± std")
     ax.plot(t, mean - std, color="white", lw=0.8, ls="--")
-    ax.set_xlabel("t")
+    ax.set_xlabel("time t")
     ax.set_title(_title(result), fontsize=10)
     ax.legend(loc="upper left", fontsize=8, framealpha=0.4)
+    log = isinstance(norm, matplotlib.colors.LogNorm)
     for axis, k, label in ((ax_mu, 0, "μ (t = 0)"), (ax_nu, -1, "ν (t = T)")):
         axis.fill_betweenx(x, result.density[k], color="tab:orange", alpha=0.6)
-        axis.set_xlabel(label)
-        axis.set_xlim(left=0)
+        axis.set_xlabel(f"{label}\ndensity")
+        if log:
+            axis.set_xscale("log")
+            axis.set_xlim(norm.vmin, norm.vmax * 1.5)
+        else:
+            axis.set_xlim(left=0)
     ax_mu.invert_xaxis()
-    ax_mu.set_ylabel("x")
-    fig.colorbar(mesh, ax=ax_nu, label="density")
-    fig.tight_layout()
+    ax_mu.set_ylabel(name)
+    fig.colorbar(mesh, ax=ax_nu, label=_density_label(norm, result))
     fig.savefig(path, dpi=120)
     plt.close(fig)
     return path
@@ -57,30 +111,40 @@ def _snapshots(result: BridgeResult, count: int) -> np.ndarray:
 
 
 def _plane(ax: plt.Axes, values: np.ndarray, result: BridgeResult, a: int, b: int,
-           vmax: float | None = None) -> matplotlib.image.AxesImage:
+           vmax: float | None = None, norm: matplotlib.colors.Normalize | None = None
+           ) -> matplotlib.image.AxesImage:
     """Draw ``values`` (shape (shape[a], shape[b])) over the box face spanned by axes a, b."""
     grid = result.grid
+    names = axis_names(result)
     extent = (grid.lower[a], grid.upper[a], grid.lower[b], grid.upper[b])
+    limits = {"norm": norm} if norm is not None else {"vmin": 0.0, "vmax": vmax}
     image = ax.imshow(values.T, origin="lower", extent=extent, cmap="viridis", aspect="equal",
-                      vmin=0.0, vmax=vmax)
-    ax.set_xlabel(f"x{a}")
-    ax.set_ylabel(f"x{b}")
+                      **limits)
+    ax.set_xlabel(names[a])
+    ax.set_ylabel(names[b])
     return image
 
 
-def plot_density_2d(result: BridgeResult, path: Path, snapshots: int = 5) -> Path:
-    """Density snapshots at evenly spaced times, with the mean path drawn on each."""
+def plot_density_2d(result: BridgeResult, path: Path, snapshots: int = 5,
+                    scale: str = "auto") -> Path:
+    """Density snapshots at evenly spaced times on one colour scale (one colour bar;
+    ``scale`` as for :func:`plot_density_1d`), with the mean path and the current mean."""
     ks = _snapshots(result, snapshots)
-    fig, axes = plt.subplots(1, len(ks), figsize=(3.0 * len(ks), 3.2), sharey=True)
-    for ax, k in zip(np.atleast_1d(axes), ks, strict=True):
-        _plane(ax, result.density[k], result, 0, 1)
-        ax.plot(result.mean[:, 0], result.mean[:, 1], color="white", lw=1)
-        ax.plot(*result.mean[k], "o", color="tab:red", ms=4)
-        ax.set_title(f"t = {result.times[k]:.3g}")
-        if ax is not np.atleast_1d(axes)[0]:
+    norm = _norm(result, result.density[ks], scale)
+    fig, axes = plt.subplots(1, len(ks), figsize=(3.0 * len(ks) + 1.2, 3.6), sharey=True,
+                             layout="constrained", squeeze=False)
+    row = list(axes[0])
+    for ax, k in zip(row, ks, strict=True):
+        image = _plane(ax, result.density[k], result, 0, 1, norm=norm)
+        ax.plot(result.mean[:, 0], result.mean[:, 1], color="white", lw=1, label="mean path")
+        ax.plot(*result.mean[k], "o", color="tab:red", ms=4, label="mean at this t")
+        ax.set_title(f"t = {result.times[k]:.3g}", fontsize=10)
+        ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(4))  # no touching labels
+        if ax is not row[0]:
             ax.set_ylabel("")
+    row[0].legend(loc="lower left", fontsize=7, framealpha=0.5)
+    fig.colorbar(image, ax=row, label=_density_label(norm, result), shrink=0.9)
     fig.suptitle(_title(result), fontsize=10)
-    fig.tight_layout()
     fig.savefig(path, dpi=120)
     plt.close(fig)
     return path
@@ -110,8 +174,8 @@ def plot_density_3d(result: BridgeResult, path: Path, snapshots: int = 4) -> Pat
             _plane(ax, values, result, a, b)
             ax.plot(result.mean[:, a], result.mean[:, b], color="white", lw=1)
             ax.plot(result.mean[k, a], result.mean[k, b], "o", color="tab:red", ms=4)
-            ax.set_title(f"t = {result.times[k]:.3g}, x{c} = {grid.axes[c][centre[c]]:.3g}",
-                         fontsize=9)
+            ax.set_title(f"t = {result.times[k]:.3g}, {axis_names(result)[c]} = "
+                         f"{grid.axes[c][centre[c]]:.3g}", fontsize=9)
         for image in (ax.images[0] for ax in row):
             image.set_clim(0.0, vmax)
         fig.colorbar(row[-1].images[0], ax=list(row), label="density")
@@ -132,7 +196,8 @@ def plot_marginals_3d(result: BridgeResult, path: Path, snapshots: int = 4) -> P
         vmax = max(float(m[k].max()) for m in planes)
         for ax, (a, b), marginal in zip(row, _PLANES, planes, strict=True):
             _plane(ax, marginal[k], result, a, b, vmax=vmax)
-            ax.set_title(f"t = {result.times[k]:.3g}, ∫ dx{3 - a - b}", fontsize=9)
+            ax.set_title(f"t = {result.times[k]:.3g}, ∫ d{axis_names(result)[3 - a - b]}",
+                         fontsize=9)
         fig.colorbar(row[-1].images[0], ax=list(row), label="marginal density")
     colours = plt.cm.plasma(np.linspace(0.0, 0.85, len(ks)))
     for a, ax in enumerate(axes[-1]):
@@ -140,8 +205,8 @@ def plot_marginals_3d(result: BridgeResult, path: Path, snapshots: int = 4) -> P
         for k, colour in zip(ks, colours, strict=True):
             ax.plot(result.grid.axes[a], marginal[k], color=colour,
                     label=f"t = {result.times[k]:.3g}")
-        ax.set_xlabel(f"x{a}")
-        ax.set_ylabel(f"marginal density of x{a}")
+        ax.set_xlabel(axis_names(result)[a])
+        ax.set_ylabel(f"marginal density of {axis_names(result)[a]}")
     axes[-1][0].legend(fontsize=7)
     fig.suptitle(f"marginals\n{_title(result)}", fontsize=10)
     fig.savefig(path, dpi=110)
@@ -151,49 +216,74 @@ def plot_marginals_3d(result: BridgeResult, path: Path, snapshots: int = 4) -> P
 
 def plot_moments(result: BridgeResult, path: Path) -> Path:
     """Mean ± std per axis, and free energy along t."""
-    fig, (ax, ax_f) = plt.subplots(1, 2, figsize=(9, 3.5))
+    fig, (ax, ax_f) = plt.subplots(1, 2, figsize=(9, 3.8), layout="constrained")
     t = result.times
+    names = axis_names(result)
     for a in range(result.grid.dim):
         mean = result.mean[:, a]
         std = np.sqrt(result.cov[:, a, a])
-        line, = ax.plot(t, mean, label=f"mean x{a}" if result.grid.dim > 1 else "mean")
-        ax.fill_between(t, mean - std, mean + std, color=line.get_color(), alpha=0.25)
-    ax.set_xlabel("t")
+        line, = ax.plot(t, mean, label=f"mean of {names[a]}")
+        ax.fill_between(t, mean - std, mean + std, color=line.get_color(), alpha=0.25,
+                        label=f"± std of {names[a]}")
+    ax.set_xlabel("time t")
     ax.set_ylabel("position (mean ± std)")
     ax.legend(fontsize=8)
     ax_f.plot(t, result.free_energy)
-    ax_f.set_xlabel("t")
+    ax_f.set_xlabel("time t")
     ax_f.set_ylabel("free energy F(ρ_t)")
     fig.suptitle(_title(result), fontsize=10)
-    fig.tight_layout()
     fig.savefig(path, dpi=120)
     plt.close(fig)
     return path
+
+
+def _iteration_name(result: BridgeResult) -> str:
+    if result.method != "direct":
+        return "outer iteration (fixed point)"
+    return "Newton iteration" if "Newton" in result.message else "L-BFGS iteration"
 
 
 def plot_convergence(result: BridgeResult, path: Path) -> Path:
-    """Self-consistency residual and marginal error against the outer iteration."""
-    fig, ax = plt.subplots(figsize=(5, 3.5))
+    """What the stopping rule watches, against the iteration: the self-consistency residual
+    and the marginal error (fixed-point solvers), or the stopping quantity the direct solver
+    records (``criterion``; its largest gradient entry when none is recorded)."""
+    import textwrap
+
+    fig, ax = plt.subplots(figsize=(6, 4), layout="constrained")
     it = np.arange(1, len(result.history) + 1)
-    ax.semilogy(it, [h["residual"] or np.nan for h in result.history], "o-", label="residual")
-    ax.semilogy(it, [h["marginal_error"] for h in result.history], "s-", label="marginal error")
-    ax.set_xlabel("outer iteration")
-    ax.legend()
-    ax.set_title(result.message, fontsize=8)
-    fig.tight_layout()
+    if result.method == "direct":
+        stopping = getattr(result, "stopping", None) or {}
+        if any("criterion" in h for h in result.history):
+            values = [h.get("criterion", np.nan) for h in result.history]
+            label = stopping.get("quantity", "stopping quantity")
+        else:
+            values = [h["residual"] for h in result.history]
+            label = "largest gradient entry of J"
+        ax.semilogy(it, values, "o-", ms=3, label=label)
+        ax.set_ylabel(label)
+    else:
+        ax.semilogy(it, [h["residual"] or np.nan for h in result.history], "o-",
+                    label="self-consistency residual")
+        ax.semilogy(it, [h["marginal_error"] or np.nan for h in result.history], "s-",
+                    label="marginal error")
+        ax.set_ylabel("residual, marginal error")
+    ax.set_xlabel(_iteration_name(result))
+    ax.legend(fontsize=8)
+    ax.set_title("\n".join(textwrap.wrap(result.message, 70)), fontsize=8)
     fig.savefig(path, dpi=120)
     plt.close(fig)
     return path
 
 
-def plot_result(result: BridgeResult, directory: str | Path) -> list[Path]:
-    """Write the standard figures of ``result`` into ``directory``; returns their paths."""
+def plot_result(result: BridgeResult, directory: str | Path, scale: str = "auto") -> list[Path]:
+    """Write the standard figures of ``result`` into ``directory``; returns their paths.
+    ``scale``: colour scale of the density figures (``auto``, ``linear``, ``log``)."""
     out = Path(directory)
     out.mkdir(parents=True, exist_ok=True)
     if result.grid.dim == 1:
-        paths = [plot_density_1d(result, out / "density.png")]
+        paths = [plot_density_1d(result, out / "density.png", scale=scale)]
     elif result.grid.dim == 2:
-        paths = [plot_density_2d(result, out / "density.png")]
+        paths = [plot_density_2d(result, out / "density.png", scale=scale)]
     else:
         paths = [plot_density_3d(result, out / "density.png"),
                  plot_marginals_3d(result, out / "marginals.png")]
