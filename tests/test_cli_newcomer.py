@@ -178,7 +178,8 @@ def test_data_file_found_in_repository_is_recorded(tmp_path):
     found = input_files(config, base=tmp_path)
     assert Path(found["endpoints.initial.path"]["path"]) == (
         ROOT / "examples/data/chemotaxis_start.csv").resolve()
-    assert input_files({"interaction": {"_target_": "mfbridge.model.potentials.GaussianCore"}}) == {}
+    builtin = {"interaction": {"_target_": "mfbridge.model.potentials.GaussianCore"}}
+    assert input_files(builtin) == {}
 
 
 def test_unimportable_module_message_names_the_working_directory(tmp_path, monkeypatch):

@@ -5,9 +5,10 @@ A confinement U or pair interaction W may be any object with two methods,
 * ``value(x)``: points of shape (m, d) (float64; length L) → U(x) of shape (m,) (L²/T²);
 * ``grad(x)``: points of shape (m, d) → ∇U(x) of shape (m, d) (L/T²),
 
-a subclass of :class:`~mfbridge.model.potentials.Confinement` / :class:`~mfbridge.model.potentials.Interaction`
-or not. Before any numerical work, :func:`as_confinement` and :func:`as_interaction` call both
-methods on a few points of the problem's box (deterministic, seed 0) and refuse, with an
+a subclass of :class:`~mfbridge.model.potentials.Confinement` /
+:class:`~mfbridge.model.potentials.Interaction` or not. Before any numerical work,
+:func:`as_confinement` and :func:`as_interaction` call both methods on a few points of the
+problem's box (deterministic, seed 0) and refuse, with an
 :class:`~mfbridge.errors.InputError` that names the user's class, a potential whose
 
 * outputs have the wrong shape or are not finite;
