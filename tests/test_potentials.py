@@ -356,8 +356,12 @@ def test_describe_and_repr() -> None:
 
 
 def _compose(group: str, stem: str):
+    from tests.test_config import REQUIRED
+
+    # options with required values (??? in conf/) get what a user must give
+    required = REQUIRED.get(f"{group}={stem}", [])
     with initialize_config_dir(config_dir=str(CONF), version_base="1.3"):
-        return compose(config_name=f"{group}/{stem}")
+        return compose(config_name=f"{group}/{stem}", overrides=required)
 
 
 def _check_params_match(obj: Confinement | Interaction, node) -> None:
