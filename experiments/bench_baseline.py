@@ -59,6 +59,7 @@ from typing import Any
 import numpy as np
 import scipy
 import scipy.optimize
+from study_common import ROOT, UPDATE_FLAG, add_output_flag, output_dir
 
 from mfbridge.model.endpoints import Gaussian
 from mfbridge.model.grid import Grid
@@ -423,8 +424,13 @@ def figure(data: dict[str, Any], path: Path) -> None:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true")
-    parser.add_argument("--out", type=Path, default=Path(__file__).parent / "results")
+    parser.add_argument("--out", type=Path, default=None, help="output folder (default: "
+                        "experiments/out/results, or experiments/results with --update-committed)")
+    add_output_flag(parser)
     args = parser.parse_args()
+    if args.out is None:
+        args.out = output_dir(ROOT / "experiments" / "results",
+                              [UPDATE_FLAG] if args.update_committed else [])
     cfg = QUICK if args.quick else FULL
     exact = exact_cost()
     data: dict[str, Any] = {"exact": exact, "quick": args.quick, "gtol": GTOL,

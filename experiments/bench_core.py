@@ -43,6 +43,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from study_common import ROOT, UPDATE_FLAG, add_output_flag, output_dir
 
 from mfbridge.errors import ConvergenceWarning
 from mfbridge.model.endpoints import Gaussian
@@ -388,10 +389,13 @@ def lq_table(rows: list[dict[str, Any]], mark_target: bool) -> str:
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="reduced set (smoke test)")
-    parser.add_argument("--out", default="experiments/results", help="output folder")
+    parser.add_argument("--out", default=None, help="output folder (default: experiments/out/"
+                        "results, or experiments/results with --update-committed)")
+    add_output_flag(parser)
     args = parser.parse_args(argv)
     cfg = QUICK if args.quick else FULL
-    out_dir = Path(args.out)
+    out_dir = Path(args.out) if args.out else output_dir(
+        ROOT / "experiments" / "results", [UPDATE_FLAG] if args.update_committed else [])
     out_dir.mkdir(parents=True, exist_ok=True)
     wall0 = time.perf_counter()
     data: dict[str, Any] = {

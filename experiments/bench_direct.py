@@ -22,6 +22,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 import numpy as np
 import torch
+from study_common import output_dir
 
 from mfbridge import lq_bridge
 from mfbridge.model.endpoints import Gaussian, GaussianMixture
@@ -32,7 +33,8 @@ from mfbridge.model.problem import BridgeProblem
 from mfbridge.solvers.direct import DirectOptions, solve_direct
 from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
 
-OUT = Path(__file__).resolve().parent / "results"
+# experiments/out/results unless run with --update-committed (then the tracked results/)
+OUT = output_dir(Path(__file__).resolve().parent / "results")
 
 
 def cross_check(n: int, k: int) -> list[str]:

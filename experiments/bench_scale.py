@@ -64,6 +64,7 @@ from bench_core import (  # the problems of the core benchmark
     sinkhorn_total,
     vm_hwm_mb,
 )
+from study_common import ROOT, UPDATE_FLAG, add_output_flag, output_dir
 
 from mfbridge.errors import ConvergenceWarning
 from mfbridge.numerics.propagator import CONTOUR_POINTS
@@ -239,13 +240,16 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="small cases (smoke test)")
     parser.add_argument("--skip-k100", action="store_true", help="leave out 3D 32^3 K = 100")
-    parser.add_argument("--out", default="experiments/results", help="output folder")
+    parser.add_argument("--out", default=None, help="output folder (default: experiments/out/"
+                        "results, or experiments/results with --update-committed)")
+    add_output_flag(parser)
     args = parser.parse_args(argv)
     mode = "QUICK" if args.quick else "FULL"
     cases = QUICK if args.quick else FULL
     if args.skip_k100:
         cases = [c for c in cases if not (c[0] == "3D" and c[3] == 100)]
-    out = Path(args.out)
+    out = Path(args.out) if args.out else output_dir(
+        ROOT / "experiments" / "results", [UPDATE_FLAG] if args.update_committed else [])
     out.mkdir(parents=True, exist_ok=True)
     fig_dir = out / "bench_scale_3d"
     wall0 = time.perf_counter()

@@ -22,7 +22,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from study_common import ROOT, mfbridge
+from study_common import ROOT, add_output_flag, mfbridge, output_dir
 
 from mfbridge import load
 from mfbridge.runs import records
@@ -30,7 +30,7 @@ from mfbridge.runs import records
 SWEEPS = {"coarse": (-2, -1, 0, 1, 2), "fine": (0.8, 0.9, 1.0, 1.1, 1.2)}
 MODES = ("none", "nearest")
 RUN_DIR = ROOT / "experiments" / "runs" / "bench_sweep_warm_start"
-OUT = ROOT / "experiments" / "results" / "sweep_warm_start.md"
+OUT = output_dir(ROOT / "experiments" / "results") / "sweep_warm_start.md"
 
 
 def run_sweep(values: tuple[float, ...], mode: str, folder: Path) -> dict[str, Any]:
@@ -104,7 +104,9 @@ def table(name: str, values: tuple[float, ...], runs: dict[str, list[dict[str, A
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--repeat", type=int, default=2)
+    add_output_flag(parser)
     args = parser.parse_args(argv)
+    OUT.parent.mkdir(parents=True, exist_ok=True)
     sections = []
     for name, values in SWEEPS.items():
         runs: dict[str, list[dict[str, Any]]] = {m: [] for m in MODES}

@@ -25,12 +25,14 @@ import io
 from pathlib import Path
 
 import numpy as np
+from study_common import output_dir
 
 from mfbridge.model.grid import Grid
 from mfbridge.model.potentials import GaussianCore, TiltedDoubleWell
 from mfbridge.particles import PairForce, simulate
 
-OUT = Path(__file__).resolve().parent.parent / "examples" / "data"
+# experiments/out/examples/data unless run with --update-committed (then examples/data)
+OUT = output_dir(Path(__file__).resolve().parent.parent / "examples" / "data")
 SEED = 20260
 N_START, N_END = 500, 350
 HORIZON, STEPS = 1.5, 150

@@ -2,13 +2,41 @@
 
 from __future__ import annotations
 
+import argparse
 import os
 import subprocess
 import sys
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
-REPORT_DIR = ROOT / "experiments" / "reports"
+#: Regenerate the committed reports and results (tracked files) instead of experiments/out/.
+UPDATE_FLAG = "--update-committed"
+#: Where the scripts write by default: git-ignored, so later run records are not "dirty".
+OUT_ROOT = ROOT / "experiments" / "out"
+
+
+def output_dir(committed: Path, argv: list[str] | None = None) -> Path:
+    """The folder a script writes to: ``committed`` (a tracked folder such as
+    experiments/results) only when the command line has ``--update-committed``; else the same
+    relative place under the git-ignored experiments/out/ (experiments/results ->
+    experiments/out/results, examples/data -> experiments/out/examples/data)."""
+    args = sys.argv[1:] if argv is None else argv
+    if UPDATE_FLAG in args:
+        return committed
+    committed = committed.resolve()
+    experiments = ROOT / "experiments"
+    base = experiments if experiments in committed.parents else ROOT
+    return OUT_ROOT / committed.relative_to(base)
+
+
+def add_output_flag(parser: argparse.ArgumentParser) -> None:
+    """The --update-committed option of a script's parser (see :func:`output_dir`)."""
+    parser.add_argument(UPDATE_FLAG, action="store_true",
+                        help="write into the committed (tracked) folder instead of "
+                             "experiments/out/ (regenerating the committed reports)")
+
+
+REPORT_DIR = output_dir(ROOT / "experiments" / "reports")
 FIGURE_DIR = REPORT_DIR / "figures"
 
 
@@ -25,19 +53,31 @@ def dirname_override(scenario: list[str]) -> str:
     return f"hydra.job.config.override_dirname.exclude_keys=[{','.join(keys)}]"
 
 
+QUIET = "--quiet" in sys.argv[1:]
+
+
 def mfbridge(*args: str) -> str:
-    """Run the mfbridge console script from the repository root; return its output (stdout and
-    stderr together); stop with the output when it fails."""
-    script = Path(sys.executable).with_name("mfbridge")
-    # PYTHONPATH: the console script imports this checkout, not whichever one is installed
+    """Run ``python -m mfbridge`` (this interpreter: no ``mfbridge`` on PATH needed) from the
+    repository root; return its output (stdout and stderr together), echoing each line to
+    stderr as it comes unless the script was given ``--quiet``; stop with the output when it
+    fails."""
+    # PYTHONPATH: the command imports this checkout, not whichever one is installed
     env = {**os.environ, "OPENBLAS_NUM_THREADS": "1",
            "PYTHONPATH": os.pathsep.join(p for p in (str(ROOT), os.environ.get("PYTHONPATH"))
                                          if p)}
-    done = subprocess.run([str(script), *args], cwd=ROOT, env=env, text=True,
-                          stdout=subprocess.PIPE, stderr=subprocess.STDOUT, check=False)
-    if done.returncode != 0:
-        raise SystemExit(f"mfbridge {' '.join(args)} failed:\n{done.stdout}")
-    return done.stdout
+    lines = []
+    with subprocess.Popen([sys.executable, "-m", "mfbridge", *args], cwd=ROOT, env=env,
+                          text=True, stdout=subprocess.PIPE, stderr=subprocess.STDOUT) as proc:
+        assert proc.stdout is not None
+        for line in proc.stdout:
+            lines.append(line)
+            if not QUIET:
+                sys.stderr.write(line)
+                sys.stderr.flush()
+    output = "".join(lines)
+    if proc.returncode != 0:
+        raise SystemExit(f"mfbridge {' '.join(args)} failed:\n{output}")
+    return output
 
 
 def tail(text: str, n: int) -> str:

@@ -234,3 +234,62 @@ def test_sweep_over_data_files_names_jobs_by_short_ids(tmp_path):
         assert len(job.name) <= 120 and "/" not in job.name and (job / "record.json").is_file()
         record = json.loads((job / "record.json").read_text())
         assert any(o.startswith("endpoints.initial.path=/") for o in record["overrides"])
+
+
+# ------------------------------------------------------------------ item 13: script outputs
+
+
+EXPERIMENTS = ROOT / "experiments"
+
+
+def test_scripts_write_to_an_untracked_folder_by_default():
+    """Before: the study and bench scripts overwrote tracked reports, so every later run record
+    said git dirty. Every script that writes goes through study_common.output_dir."""
+    sys.path.insert(0, str(EXPERIMENTS))
+    try:
+        import study_common
+    finally:
+        sys.path.remove(str(EXPERIMENTS))
+    results = EXPERIMENTS / "results"
+    assert study_common.output_dir(results, []) == EXPERIMENTS / "out" / "results"
+    assert study_common.output_dir(results, ["--update-committed"]) == results
+    assert study_common.output_dir(ROOT / "examples" / "data", []) == (
+        EXPERIMENTS / "out" / "examples" / "data")
+    ignored = subprocess.run(["git", "check-ignore", "-q", "experiments/out/x.md"], cwd=ROOT,
+                             check=False)
+    assert ignored.returncode == 0
+    for script in sorted(EXPERIMENTS.glob("*.py")):
+        text = script.read_text()
+        writes = any(w in text for w in ("write_text(", "savefig(", "savez"))
+        if writes and script.name != "study_common.py":
+            assert "output_dir" in text or "REPORT_DIR" in text, script.name
+
+
+@pytest.mark.slow
+def test_demo_data_script_leaves_the_checkout_clean(tmp_path):
+    before = subprocess.run(["git", "status", "--porcelain"], cwd=ROOT, text=True,
+                            capture_output=True, check=True).stdout
+    env = {**os.environ, "OPENBLAS_NUM_THREADS": "1"}
+    subprocess.run([sys.executable, str(EXPERIMENTS / "make_demo_samples.py")], cwd=tmp_path,
+                   env=env, check=True, capture_output=True, timeout=900)
+    after = subprocess.run(["git", "status", "--porcelain"], cwd=ROOT, text=True,
+                           capture_output=True, check=True).stdout
+    assert after == before
+    assert (EXPERIMENTS / "out" / "examples" / "data" / "chemotaxis_start.csv").is_file()
+
+
+def test_lq_control_takes_positions_in_1d():
+    """Before: exact.control(50, x) refused a 1D array or a scalar in 1D. The values are the
+    closed form u = ū + A (x - m) (Bunne, Hsieh, Cuturi & Krause, AISTATS 2023)."""
+    from mfbridge import lq_bridge
+
+    exact = lq_bridge(stiffness=1.0, strength=1.5, noise=1.0, horizon=1.0, mean0=-1.0,
+                      cov0=0.16, mean1=1.2, cov1=0.49, times=101)
+    x = np.linspace(-2.0, 2.0, 5)
+    expected = exact.mean_control[50, 0] + exact.gain[50, 0, 0] * (x - exact.mean[50, 0])
+    np.testing.assert_allclose(exact.control(50, x), expected, rtol=1e-14)
+    assert exact.control(50, x).shape == (5,)
+    assert float(exact.control(50, 0.5)) == pytest.approx(
+        exact.mean_control[50, 0] + exact.gain[50, 0, 0] * (0.5 - exact.mean[50, 0]))
+    np.testing.assert_allclose(exact.control(50, x[:, None])[:, 0], expected, rtol=1e-14)
+    assert exact.density(50, x).shape == (5,)

@@ -198,3 +198,61 @@ def test_direct_progress_lines(caplog, monkeypatch):
     assert sum("Newton iteration" in line for line in lines) == 30
     assert "Newton iteration    1: J = 4, largest gradient entry 1.00e+01" in caplog.text
     assert sum("L-BFGS iteration" in line for line in lines) == 10 + 9 + 1
+
+
+# ------------------------------------------------------------------ item 12: collect figures
+
+
+@pytest.fixture(scope="module")
+def sweep(tmp_path_factory):
+    """Four tiny runs of a sweep over interaction.strength, in folders named as Hydra names
+    them (their text order -0.4, -0.8, -1.2, 0.0 is not the numeric order)."""
+    from mfbridge.runs.cli import run
+
+    root = tmp_path_factory.mktemp("sweep")
+    for value in ("-0.4", "-0.8", "-1.2", "0.0"):
+        override = f"interaction.strength={value}"
+        run(compose([override, "grid.shape=48", "steps=10", "figures=false"]), root / override,
+            record_extra={"overrides": [override]})
+    return root
+
+
+def test_collect_figures_in_numeric_order_on_one_scale(sweep, saved):
+    """Before: panels in folder-name order, one colour scale each, no colour bar, mean paths
+    only (they coincide for an interaction sweep)."""
+    from mfbridge.runs.commands.collect import collect
+
+    collect(sweep)
+    fig = saved["densities.png"]
+    panels = [ax for ax in fig.axes if ax.get_visible() and ax.collections
+              and getattr(ax, "_colorbar", None) is None]
+    titles = [ax.get_title().splitlines()[0] for ax in panels]
+    assert titles == [f"interaction.strength={v}" for v in (-1.2, -0.8, -0.4, 0.0)]
+    assert len({(ax.collections[0].norm.vmin, ax.collections[0].norm.vmax)
+                for ax in panels}) == 1
+    assert len(colorbars(fig)) == 1
+    paths = saved["mean_paths.png"]
+    mean_ax, spread_ax = paths.axes[:2]
+    assert spread_ax.get_ylabel() == "standard deviation (length)"
+    assert mean_ax.get_ylabel() and spread_ax.get_title().startswith("spread")
+    legend = [t.get_text() for t in spread_ax.get_legend().get_texts()]
+    assert legend == [f"interaction.strength={v}" for v in (-1.2, -0.8, -0.4, 0.0)]
+    for name in ("cost.png", "densities.png", "mean_paths.png"):
+        assert clipped_texts(saved[name]) == [], name
+        assert all(ax.get_ylabel() for ax in saved[name].axes
+                   if ax.get_visible() and getattr(ax, "_colorbar", None) is None), name
+
+
+def test_check_figures_have_y_labels_and_no_overlapping_ticks(sweep, saved, tmp_path):
+    """Before: check_convergence.png's minor tick labels overlapped; histograms had no y label."""
+    from mfbridge.particles.plots import plot_check
+    from mfbridge.runs.api import check, load
+
+    result = load(sweep / "interaction.strength=0.0")
+    report = check(result, n_particles=[60, 120, 240], seeds=[0, 1])
+    plot_check(report, tmp_path)
+    for name in ("check_histograms.png", "check_clouds.png", "check_convergence.png"):
+        fig = saved[name]
+        assert all(ax.get_ylabel() for ax in fig.axes), name
+        assert overlapping_ticks(fig) == [], name
+        assert clipped_texts(fig) == [], name

@@ -72,6 +72,7 @@ def _histograms(report: CheckReport) -> Any:
                     alpha=0.5, label=f"{n} particles")
             ax.plot(x, report.density[k], color="k", lw=1.2, label="ρ_t (grid)")
             ax.set_xlabel("x")
+            ax.set_ylabel("density (1/length)")
         else:
             ax.contour(grid.axes[0], grid.axes[1], report.density[k].T, levels=6,
                        colors="k", linewidths=0.8)
@@ -108,6 +109,7 @@ def _clouds(report: CheckReport) -> Any:
             ax.plot(x, report.flow[-1] / grid.cell_volume, "--", color="tab:red", lw=1.2,
                     label="McKean–Vlasov at T (grid)")
         ax.set_xlabel("x")
+        ax.set_ylabel("density (1/length)")
         ax.legend(fontsize=8)
     else:
         fig, axes = plt.subplots(1, 2, figsize=(9, 4.2), sharex=True, sharey=True)
@@ -118,6 +120,8 @@ def _clouds(report: CheckReport) -> Any:
                 ax.scatter(pts[:, 0], pts[:, 1], s=1, alpha=0.3)
             ax.set_title(f"{name} at T against ν", fontsize=9)
             ax.set_aspect("equal")
+            ax.set_xlabel("x0")
+        axes[0].set_ylabel("x1")
     fig.suptitle(f"N = {ctrl.shape[0]}, T = {report.horizon:g}", fontsize=10)
     fig.tight_layout()
     return fig
@@ -125,6 +129,7 @@ def _clouds(report: CheckReport) -> Any:
 
 def _convergence(report: CheckReport) -> Any:
     import matplotlib.pyplot as plt
+    from matplotlib.ticker import NullFormatter
 
     fig, ax = plt.subplots(figsize=(5.2, 4.0))
     ns = np.array([r.n_particles for r in report.table], dtype=float)
@@ -146,8 +151,12 @@ def _convergence(report: CheckReport) -> Any:
     ax.plot(dense, err[0] * np.sqrt(ns[0] / dense), ":", color="k", lw=1, label="N^-1/2")
     ax.set_xscale("log")
     ax.set_yscale("log")
-    ax.set_xlabel("N")
-    ax.set_ylabel("W1 at T")
+    # a log axis over less than a decade labels its minor ticks too, and they collide
+    ax.xaxis.set_minor_formatter(NullFormatter())
+    ax.yaxis.set_minor_formatter(NullFormatter())
+    ax.set_xticks(ns, [f"{int(n)}" for n in ns])
+    ax.set_xlabel("number of particles N")
+    ax.set_ylabel("W1 distance to ρ_T (length)")
     ax.legend(fontsize=7)
     fig.tight_layout()
     return fig

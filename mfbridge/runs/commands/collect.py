@@ -9,8 +9,9 @@ into ``SWEEP_DIR/collected/`` (or ``--out``):
   and problem and empty numbers;
 * ``sweep.nc``: the complete runs' results combined into one dataset with the swept parameters
   as dimensions (missing combinations are NaN);
-* ``cost.png`` (cost against each swept parameter), ``mean_paths.png`` (mean paths overlaid),
-  ``densities.png`` (a grid of density heat maps).
+* ``cost.png`` (cost against each swept parameter), ``mean_paths.png`` (mean paths and
+  spreads over time), ``densities.png`` (density heat maps on one colour scale, in the order of
+  the swept values).
 
 Swept parameters are the keys of the sweep overrides in ``multirun.yaml`` together with every
 override key whose value differs between runs. Runs that failed, did not finish or did not
@@ -219,6 +220,27 @@ def _label(row: Row, keys: list[str]) -> str:
     return ", ".join(f"{k}={row.params[k]}" for k in keys) or row.run
 
 
+def _value_key(value: Any) -> tuple[int, Any]:
+    """Sort key of a swept value: numbers by value (also when given as text), then text."""
+    if isinstance(value, (int, float)) and not isinstance(value, bool):
+        return (0, float(value))
+    try:
+        return (0, float(str(value)))
+    except ValueError:
+        return (1, str(value))
+
+
+def _in_order(rows: list[Row], results: list[Any], keys: list[str]
+              ) -> tuple[list[Row], list[Any]]:
+    """Complete runs and their results, ordered by the swept values (numerically), not by the
+    folder names' text (which put -0.4 before -0.8 before -1.2 before 0.0)."""
+    complete = [r for r in rows if r.folder is not None]
+    order = sorted(range(len(complete)),
+                   key=lambda i: [_value_key(complete[i].params.get(k)) for k in keys]
+                   + [(1, complete[i].run)])
+    return [complete[i] for i in order], [results[i] for i in order]
+
+
 def plot_cost(path: Path, keys: list[str], rows: list[Row]) -> Path:
     """Cost against each swept parameter (one line per value of the other parameters);
     runs that did not converge are drawn as open red circles."""
@@ -238,7 +260,7 @@ def plot_cost(path: Path, keys: list[str], rows: list[Row]) -> Path:
             groups.setdefault(", ".join(f"{k}={row.params[k]}" for k in others), []).append(row)
         for label, group in groups.items():
             xs = [r.params[key] if keys else r.run for r in group]
-            order = sorted(range(len(xs)), key=lambda i: (str(type(xs[i])), xs[i]))
+            order = sorted(range(len(xs)), key=lambda i: _value_key(xs[i]))
             xs = [xs[i] for i in order]
             ys = [group[i].numbers["cost"] for i in order]
             ax.plot(xs, ys, marker="o", label=label or None)
@@ -257,79 +279,126 @@ def plot_cost(path: Path, keys: list[str], rows: list[Row]) -> Path:
     return path
 
 
+def _varies(curves: list[np.ndarray]) -> bool:
+    """Whether the curves differ by more than 1e-3 of their range (else they coincide)."""
+    if len(curves) < 2:
+        return True
+    stack = np.array([np.ravel(c) for c in curves if np.size(c) == np.size(curves[0])])
+    spread = float(np.ptp(stack, axis=0).max()) if stack.size else 0.0
+    scale = max(float(np.ptp(stack)), float(np.abs(stack).max()), 1e-300)
+    return spread > 1e-3 * scale
+
+
 def plot_mean_paths(path: Path, keys: list[str], rows: list[Row], results: list[Any]) -> Path:
-    """Mean paths of all complete runs overlaid (1D: mean against t; 2D: the mean's track)."""
+    """Mean and spread of every complete run against time, in the order of the swept values:
+    left the mean (1D: m_t; 2D/3D: the mean's track in the x0-x1 plane), right the spread
+    (1D: std; else √tr Σ_t, length). Pair forces cancel in the mean, so an interaction sweep
+    moves only the spread: a panel whose curves coincide says so in its title."""
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    fig, ax = plt.subplots(figsize=(6, 4))
-    complete = [r for r in rows if r.folder is not None]
-    for row, result in zip(complete, results, strict=True):
+    ordered, res = _in_order(rows, results, keys)
+    fig, (ax, ax_s) = plt.subplots(1, 2, figsize=(10, 4.2), layout="constrained")
+    colours = plt.cm.viridis(np.linspace(0.0, 0.9, max(len(res), 1)))
+    means, spreads = [], []
+    for row, result, colour in zip(ordered, res, colours, strict=False):
         style = "-" if result.converged else ":"
+        label = _label(row, keys)
+        cov = np.asarray(result.cov)
+        spread = np.sqrt(np.trace(cov, axis1=1, axis2=2))
         if result.grid.dim == 1:
-            ax.plot(result.times, result.mean[:, 0], style, label=_label(row, keys))
+            ax.plot(result.times, result.mean[:, 0], style, color=colour, label=label)
+            means.append(result.mean[:, 0])
         else:
-            ax.plot(result.mean[:, 0], result.mean[:, 1], style, label=_label(row, keys))
-    if results and results[0].grid.dim == 1:
-        ax.set_xlabel("t")
-        ax.set_ylabel("mean of x")
+            ax.plot(result.mean[:, 0], result.mean[:, 1], style, color=colour, label=label)
+            means.append(result.mean[:, :2])
+        ax_s.plot(result.times, spread, style, color=colour, label=label)
+        spreads.append(spread)
+    if res and res[0].grid.dim == 1:
+        ax.set_xlabel("time t")
+        ax.set_ylabel("mean position")
+        ax_s.set_ylabel("standard deviation (length)")
     else:
         ax.set_xlabel("mean of x0")
         ax.set_ylabel("mean of x1")
-    ax.legend(fontsize=7)
-    ax.set_title("mean paths (dotted: not converged)", fontsize=10)
-    fig.tight_layout()
+        ax_s.set_ylabel("spread √tr Σ (length)")
+    ax_s.set_xlabel("time t")
+    same = " (all runs coincide)"
+    ax.set_title("mean paths" + ("" if _varies(means) else same), fontsize=10)
+    ax_s.set_title("spread" + ("" if _varies(spreads) else same), fontsize=10)
+    target = ax_s if _varies(spreads) or not _varies(means) else ax
+    target.legend(fontsize=7)
+    if not all(r.converged for r in res):
+        fig.suptitle("dotted: not converged", fontsize=9)
     fig.savefig(path, dpi=120)
     plt.close(fig)
     return path
 
 
 def plot_densities(path: Path, keys: list[str], rows: list[Row], results: list[Any]) -> Path:
-    """A grid of density heat maps, one panel per complete run (1D: ρ(t, x); 2D: ρ at T/2;
-    3D: the x0-x1 marginal at T/2).
-    With two swept parameters the panels form their table (rows: first, columns: second)."""
+    """A grid of density heat maps on one colour scale (one colour bar), one panel per complete
+    run in the order of the swept values (1D: ρ(t, x); 2D: ρ at T/2; 3D: the x0-x1 marginal at
+    T/2). With two swept parameters the panels form their table (rows: first, columns:
+    second)."""
     import matplotlib
 
     matplotlib.use("Agg")
+    import matplotlib.colors
     import matplotlib.pyplot as plt
+    import matplotlib.ticker
 
-    complete = [r for r in rows if r.folder is not None]
+    complete, res = _in_order(rows, results, keys)
     if len(keys) == 2:
-        row_vals = sorted({r.params[keys[0]] for r in complete}, key=lambda v: (str(type(v)), v))
-        col_vals = sorted({r.params[keys[1]] for r in complete}, key=lambda v: (str(type(v)), v))
+        row_vals = sorted({r.params[keys[0]] for r in complete}, key=_value_key)
+        col_vals = sorted({r.params[keys[1]] for r in complete}, key=_value_key)
         place = {i: (row_vals.index(r.params[keys[0]]), col_vals.index(r.params[keys[1]]))
                  for i, r in enumerate(complete)}
         nr, nc = len(row_vals), len(col_vals)
     else:
-        nc = min(len(complete), 4)
-        nr = math.ceil(len(complete) / nc)
+        nc = min(max(len(complete), 1), 4)
+        nr = max(math.ceil(len(complete) / nc), 1)
         place = {i: divmod(i, nc) for i in range(len(complete))}
-    fig, axes = plt.subplots(nr, nc, figsize=(3.2 * nc, 2.8 * nr), squeeze=False)
+
+    def shown(result: Any) -> np.ndarray:
+        if result.grid.dim == 1:
+            return np.asarray(result.density)
+        mid = len(result.times) // 2
+        # in 3D: the marginal on the x0-x1 plane (ρ integrated over x2)
+        return np.asarray(result.density[mid] if result.grid.dim == 2
+                          else result.marginal((0, 1))[mid])
+
+    planes = [shown(r) for r in res]
+    vmax = max((float(p.max()) for p in planes), default=1.0) or 1.0
+    norm = matplotlib.colors.Normalize(vmin=0.0, vmax=vmax)
+    fig, axes = plt.subplots(nr, nc, figsize=(3.2 * nc + 1.0, 2.9 * nr), squeeze=False,
+                             layout="constrained")
     for ax in axes.flat:
         ax.set_visible(False)
-    for i, (row, result) in enumerate(zip(complete, results, strict=True)):
+    image = None
+    for i, (row, result, plane) in enumerate(zip(complete, res, planes, strict=True)):
         ax = axes[place[i]]
         ax.set_visible(True)
         if result.grid.dim == 1:
-            ax.pcolormesh(result.times, result.grid.axes[0], result.density.T, shading="auto",
-                          cmap="viridis")
+            image = ax.pcolormesh(result.times, result.grid.axes[0], plane.T, shading="auto",
+                                  cmap="viridis", norm=norm)
             ax.plot(result.times, result.mean[:, 0], color="white", lw=1)
-            ax.set_xlabel("t")
+            ax.set_xlabel("time t")
             ax.set_ylabel("x")
         else:
-            mid = len(result.times) // 2
             g = result.grid
-            # in 3D: the marginal on the x0-x1 plane (ρ integrated over x2)
-            plane = result.density[mid] if g.dim == 2 else result.marginal((0, 1))[mid]
-            ax.imshow(plane.T, origin="lower", cmap="viridis",
-                      extent=(g.lower[0], g.upper[0], g.lower[1], g.upper[1]))
+            image = ax.imshow(plane.T, origin="lower", cmap="viridis", norm=norm,
+                              extent=(g.lower[0], g.upper[0], g.lower[1], g.upper[1]))
             ax.set_xlabel("x0")
             ax.set_ylabel("x1")
+        ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(4))
         flag = "" if result.converged else " (not converged)"
         ax.set_title(f"{_label(row, keys)}\nJ = {result.cost:.5g}{flag}", fontsize=8)
-    fig.tight_layout()
+    if image is not None:
+        dim = res[0].grid.dim
+        what = "ρ(t, x)" if dim == 1 else "ρ at T/2" if dim == 2 else "x0-x1 marginal at T/2"
+        fig.colorbar(image, ax=list(axes.flat), label=f"density {what}", shrink=0.9)
     fig.savefig(path, dpi=110)
     plt.close(fig)
     return path
