@@ -138,6 +138,8 @@ class BridgeResult:
     alternatives: list[Alternative] = field(default_factory=list)
     # label of the initial guess this bridge came from ("" when not a multi-start solve)
     start: str = ""
+    # what the stopping rule watched: {"quantity": name, "value": last value, "tolerance": tol}
+    stopping: dict[str, Any] = field(default_factory=dict)
 
     @property
     def converged(self) -> bool:
@@ -181,6 +183,7 @@ class BridgeResult:
             "iterations": self.iterations,
             "residual": self.residual,
             "marginal_error": self.marginal_error,
+            "stopping": self.stopping,
             "method": self.method,
             "route": self.route,
             "noise": self.noise,
@@ -313,6 +316,7 @@ class BridgeResult:
             coupling=ds["coupling"].values if "coupling" in ds else None,
             alternatives=alternatives,
             start=summary.get("start", ""),
+            stopping=summary.get("stopping", {}),
         )
 
 

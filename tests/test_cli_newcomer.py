@@ -293,3 +293,20 @@ def test_lq_control_takes_positions_in_1d():
         exact.mean_control[50, 0] + exact.gain[50, 0, 0] * (0.5 - exact.mean[50, 0]))
     np.testing.assert_allclose(exact.control(50, x[:, None])[:, 0], expected, rtol=1e-14)
     assert exact.density(50, x).shape == (5,)
+
+
+@pytest.mark.slow
+def test_check_shows_progress_on_stderr(tmp_path):
+    """Before: mfbridge check printed nothing for 88 s; now a line per particle number and
+    seed on stderr (none with --quiet), the table on stdout."""
+    run = tmp_path / "run"
+    done = _mfbridge("grid.shape=48", "steps=10", "figures=false", f"hydra.run.dir={run}",
+                     cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    loud = _mfbridge("check", str(run), "--particles", "50", "100", "--seed", "0",
+                     "--no-figures", cwd=tmp_path)
+    assert loud.returncode == 0, loud.stderr
+    assert loud.stderr.count("N = ") == 2 and "N = " not in loud.stdout
+    quiet = _mfbridge("check", str(run), "--particles", "50", "--seed", "0", "--no-figures",
+                      "--quiet", cwd=tmp_path)
+    assert quiet.returncode == 0 and "N = " not in quiet.stderr

@@ -149,6 +149,18 @@ def test_direct_solver_reports_progress_per_iteration(direct_run):
     assert np.isfinite(float(grad))
 
 
+def test_direct_solver_reports_its_stopping_quantity(direct_run):
+    """Before: summary.json said "residual": 3.34 (a gradient entry) with status converged.
+    Now the residual is the quantity the stopping rule compares with tol, named."""
+    result, _ = direct_run
+    stopping = result.summary()["stopping"]
+    assert stopping["quantity"].startswith("predicted relative decrease of J by a Newton step")
+    assert stopping["tolerance"] == 1e-9
+    assert result.status == "converged"
+    assert result.residual == stopping["value"] <= stopping["tolerance"]
+    assert result.history[-1]["criterion"] == stopping["value"]
+
+
 def test_direct_figures_name_mobility_mass_and_iterations(direct_run, saved, tmp_path):
     """Before: 'outer iteration', an empty 'marginal error' entry, a clipped title."""
     from mfbridge.runs.plotting import plot_result
@@ -161,8 +173,9 @@ def test_direct_figures_name_mobility_mass_and_iterations(direct_run, saved, tmp
     conv = saved["convergence.png"].axes[0]
     assert conv.get_xlabel() == "Newton iteration"
     assert conv.get_ylabel()
-    labels = [t.get_text() for t in conv.get_legend().get_texts()]
+    labels = [t.get_text().replace("\n", " ") for t in conv.get_legend().get_texts()]
     assert "marginal error" not in labels
+    assert result.stopping["quantity"] in labels and "tolerance" in labels
     assert clipped_texts(saved["convergence.png"]) == []
 
 
@@ -249,7 +262,11 @@ def test_check_figures_have_y_labels_and_no_overlapping_ticks(sweep, saved, tmp_
     from mfbridge.runs.api import check, load
 
     result = load(sweep / "interaction.strength=0.0")
-    report = check(result, n_particles=[60, 120, 240], seeds=[0, 1])
+    lines: list[str] = []
+    report = check(result, n_particles=[60, 120, 240], seeds=[0, 1], progress=lines.append)
+    # item 9: one progress line per particle number and seed, in order
+    assert len(lines) == 6 and lines[-1].startswith("N =    240, seed 1: W1(T) = ")
+    assert "(6 of 6 runs" in lines[-1]
     plot_check(report, tmp_path)
     for name in ("check_histograms.png", "check_clouds.png", "check_convergence.png"):
         fig = saved[name]

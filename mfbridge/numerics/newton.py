@@ -130,9 +130,12 @@ def minimise(second_order: Callable[[Vector], SecondOrder | None],
         assert new_point is not None
         point = new_point
         gnorm = float(np.abs(point.grad).max())
+        # the stopping rule's quantity: the Newton step's predicted decrease -g·p/2 relative
+        # to |J| (its Newton decrement² / 2|J|), stop at ≤ tol after a full step
         history.append({"residual": gnorm, "marginal_error": 0.0, "cost": point.value,
                         "seconds": time.perf_counter() - start, "cg": float(n_cg),
-                        "step": step})
+                        "step": step,
+                        "criterion": -slope / (2 * max(abs(point.value), 1e-300))})
         if callback is not None:
             callback(it, point.value, gnorm)
         if gnorm <= gtol:

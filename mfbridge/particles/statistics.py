@@ -25,7 +25,7 @@ from __future__ import annotations
 
 import math
 import time
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -298,6 +298,7 @@ def check(
     pair_mode: str = "auto",
     outputs: int = 11,
     uncontrolled: bool = True,
+    progress: Callable[[str], None] | None = None,
 ) -> CheckReport:
     r"""Simulate N interacting particles driven by ``result``'s control and compare them with it.
 
@@ -312,8 +313,9 @@ def check(
     ``numpy.random.SeedSequence([seed, N])``: the same seeds give the same numbers.
 
     ``confinement``/``interaction``: the model the result was solved with (the caller builds
-    them; :func:`mfbridge.check` rebuilds them from the result's config). Raises
-    :class:`InputError` for bad arguments.
+    them; :func:`mfbridge.check` rebuilds them from the result's config). ``progress``, when
+    given, receives one line after each (N, seed) run. Raises :class:`InputError` for bad
+    arguments.
     """
     start = time.perf_counter()
     ns = [int(n) for n in n_particles]
@@ -377,6 +379,11 @@ def check(
                 if r == 0 and n == max(ns):
                     snapshots = run.positions
                 runs.append(stats)
+                if progress is not None:
+                    progress(f"N = {n:6d}, seed {seed}: W1(T) = {stats.w1[-1]:.4g}, "
+                             f"{stats.seconds:.1f} s ({len(runs)} of "
+                             f"{len(ns) * len(seed_list)} runs, "
+                             f"{time.perf_counter() - start:.0f} s so far)")
     j_control = _cost_of_control(result, control)
     spread = abs(float(result.cost) - j_control)
     table = [_row(n, [s for s in runs if s.n_particles == n], spread) for n in ns]

@@ -180,6 +180,11 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
                          "a mfbridge.solvers.direct.DirectOptions")
     result = solve_bridge(problem, options, callback, warm_start=warm_start)
     result.config = OmegaConf.to_container(cfg, resolve=True)
+    if not result.stopping:
+        result.stopping = {"quantity": "self-consistency residual and marginal error (both "
+                                       "below tol)",
+                           "value": max(result.residual, result.marginal_error),
+                           "tolerance": options.tol}
     if axes is not None:
         result.model["axes"] = axes  # figures label the axes with the data files' columns
     return result

@@ -253,14 +253,19 @@ def plot_convergence(result: BridgeResult, path: Path) -> Path:
     it = np.arange(1, len(result.history) + 1)
     if result.method == "direct":
         stopping = getattr(result, "stopping", None) or {}
-        if any("criterion" in h for h in result.history):
+        quantity = str(stopping.get("quantity", ""))
+        if quantity and "gradient" not in quantity and any("criterion" in h
+                                                           for h in result.history):
             values = [h.get("criterion", np.nan) for h in result.history]
-            label = stopping.get("quantity", "stopping quantity")
+            label = "\n".join(textwrap.wrap(quantity, 45))
         else:
             values = [h["residual"] for h in result.history]
-            label = "largest gradient entry of J"
-        ax.semilogy(it, values, "o-", ms=3, label=label)
-        ax.set_ylabel(label)
+            label = "largest entry of the gradient of J"
+        ax.semilogy(it, np.where(np.asarray(values) > 0, values, np.nan), "o-", ms=3,
+                    label=label)
+        if stopping.get("tolerance"):
+            ax.axhline(stopping["tolerance"], color="0.5", ls="--", lw=1, label="tolerance")
+        ax.set_ylabel("stopping quantity (legend)")
     else:
         ax.semilogy(it, [h["residual"] or np.nan for h in result.history], "o-",
                     label="self-consistency residual")

@@ -36,6 +36,7 @@ interpolated to cell centres and time nodes (for walkers, σ²∇ψ of the main 
 
 from __future__ import annotations
 
+import math
 import time
 import warnings
 from collections.abc import Callable
@@ -280,6 +281,7 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
     masses = p.reshape(len(p), -1).sum(axis=1)
     marginal_error = float(np.abs(masses - 1.0).max())
     status, message = opt.status, opt.message
+    stopping = stopping_record(opt.history, options, use_lbfgs, opt.grad_norm)
     if status == "converged":
         message = f"converged: {message}; J = {cost:.8g}"
     else:
@@ -313,12 +315,32 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
         status=status,
         message=message,
         iterations=opt.iterations,
-        residual=opt.grad_norm,
+        residual=stopping["value"],
         marginal_error=marginal_error,
         history=opt.history,
         timings={"setup": setup, "solve": solve_seconds, "total": time.perf_counter() - start},
         model=model,
+        stopping=stopping,
     )
+
+
+def stopping_record(history: list[dict[str, float]], options: DirectOptions, lbfgs: bool,
+                    grad_norm: float) -> dict[str, Any]:
+    """What the direct solver's stopping rule watched, named, with its last value and its
+    tolerance (the result's ``residual`` is that value): for truncated Newton the predicted
+    decrease of J by a Newton step relative to |J|, for L-BFGS the decrease of J over the last
+    ``window`` iterations relative to |J|; both against ``tol``. When the largest gradient
+    entry met ``gtol`` first, that is the quantity."""
+    if lbfgs:
+        name = f"relative decrease of J over the last {options.window} L-BFGS iterations"
+    else:
+        name = "predicted relative decrease of J by a Newton step (Newton decrement² / 2|J|)"
+    last = history[-1].get("criterion", math.nan) if history else math.nan
+    if grad_norm <= options.gtol or not math.isfinite(last):
+        return {"quantity": "largest entry of the gradient of J", "value": grad_norm,
+                "tolerance": options.gtol, "largest_gradient": grad_norm}
+    return {"quantity": name, "value": float(last), "tolerance": options.tol,
+            "largest_gradient": grad_norm}
 
 
 def _centre_control(velocity: list[np.ndarray], grid: Grid, k_steps: int) -> np.ndarray:

@@ -195,8 +195,12 @@ def lbfgs(fun: Callable[[np.ndarray], tuple[float, np.ndarray | None]], x0: np.n
         x, f, g = x_new, f_new, g_new
         gnorm = float(np.abs(g).max())
         values.append(f)
+        # the stopping rule's quantity: the decrease of J over the last `window` iterations,
+        # relative to |J| (stop at ≤ tol); not defined before `window` iterations
+        drop = (values[-options.window - 1] - f) / max(abs(f), 1e-300) \
+            if len(values) > options.window else float("nan")
         history.append({"residual": gnorm, "marginal_error": 0.0, "cost": f,
-                        "seconds": time.perf_counter() - start})
+                        "seconds": time.perf_counter() - start, "criterion": drop})
         if callback is not None:
             callback(it, f, gnorm)
         if gnorm <= options.gtol:

@@ -41,6 +41,8 @@ def _parser() -> argparse.ArgumentParser:
     parser.add_argument("--pairs", choices=("auto", "exact", "grid"), default="auto",
                         help="pair forces: exact O(N^2) sums or grid convolution (default: auto)")
     parser.add_argument("--no-figures", action="store_true", help="write no figures")
+    parser.add_argument("--quiet", action="store_true",
+                        help="no progress lines on stderr (one per particle number and seed)")
     return parser
 
 
@@ -90,8 +92,12 @@ def _main(args: argparse.Namespace) -> int:
         raise InputError(f"{folder} records no resolved config: cannot rebuild the model "
                          "(use mfbridge.check(result, confinement=..., interaction=...))")
     confinement, interaction = model_from_config(result.config)
+    def progress(line: str) -> None:
+        print(line, file=sys.stderr, flush=True)
+
     report = check(result, confinement, interaction, n_particles=args.particles,
-                   seeds=args.seed, substeps=args.substeps, pair_mode=args.pairs)
+                   seeds=args.seed, substeps=args.substeps, pair_mode=args.pairs,
+                   progress=None if args.quiet else progress)
     print(report.table_text())
     data = _clean(report.to_dict())
     data["run_dir"] = str(folder.resolve())
