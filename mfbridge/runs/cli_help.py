@@ -106,7 +106,7 @@ def help_text(conf_dir: Path = CONF_DIR) -> str:
     lines += ["", "settings (key=value; default in brackets):"]
     for key, what in SETTINGS.items():
         if key in config:
-            lines.append(f"  {key:<12} [{_yaml_value(config[key])}] {what}")
+            lines.append(f"  {key:<14} [{_yaml_value(config[key])}] {what}")
     lines += ["", *textwrap.wrap(UNITS, width), "",
               "examples:",
               "  mfbridge interaction=gaussian interaction.strength=2 noise=0.5",
