@@ -37,6 +37,12 @@ INTERPRETATION = (
 )
 RESULT_FILE = "result.nc"
 SUMMARY_FILE = "summary.json"
+#: The statuses of a solve (``BridgeResult.status``): "converged" (tol met on both the
+#: self-consistency residual and the marginal error, sanity checks passed), "not_converged"
+#: (stopped before meeting tol: iteration limit, time budget, stall; best iterate returned),
+#: "diverged" (the iteration blew up; last finite iterate returned), "suspect" (stopped as
+#: converged but a sanity check failed; the message names it).
+STATUSES = ("converged", "not_converged", "diverged", "suspect")
 
 
 class GridLike(Protocol):

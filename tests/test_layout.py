@@ -320,9 +320,10 @@ def test_premove_config_names_the_old_paths() -> None:
 
 def test_premove_run_replays(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     """``mfbridge replay`` solves the recorded config (old targets) again and compares with the
-    stored result: the same numbers within the solver tolerance 1e-9 (measured: bit for bit,
-    on the machine that wrote it)."""
-    code = replay(PREMOVE, tmp_path / "again", 1e-9, figures=False)
+    stored result: the same numbers within 1e-8 (measured: bit for bit on the machine that
+    wrote it, until the dense route's marginals were polished by operator sweeps (issue 14),
+    which moved the cost of this 32-cell run by 3.8e-9 and the density by 3.6e-10)."""
+    code = replay(PREMOVE, tmp_path / "again", 1e-8, figures=False)
     out = capsys.readouterr().out
     assert code == 0, out
     assert "verdict: REPRODUCED" in out

@@ -58,6 +58,7 @@ from mfbridge.numerics.reference import (
 )
 from mfbridge.result import BridgeResult
 from mfbridge.solvers import multistart
+from mfbridge.solvers.stopping import MarginalStall
 
 METHODS = ("optimal", "frozen")
 PROPAGATIONS = ("auto", "rational", "log")
@@ -312,6 +313,9 @@ class _Start:
     p_bar: np.ndarray
     v_bar: np.ndarray
     log_b: np.ndarray
+    # a solution given by the caller: its first sub-problem is solved to sinkhorn_tol, so that a
+    # converged result is a fixed point (a loose first solve moves it by more than tol)
+    solution: bool = False
 
 
 @dataclass
@@ -323,6 +327,7 @@ class _Outcome:
     residual: float
     bridge: _Bridge
     noise_start: float = 0.0  # first noise of a noise continuation (0: none)
+    stop: str = ""  # why the loop stopped short of tol where retrying cannot help
 
     @property
     def log_domain(self) -> bool:
@@ -417,15 +422,16 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
         start = _Start(warm_start.masses,
                        np.nan_to_num(warm_start.correction) if options.method == "optimal"
                        else np.zeros_like(warm_start.correction),
-                       np.nan_to_num(warm_start.log_backward[-1], nan=0.0, neginf=-745.0))
+                       np.nan_to_num(warm_start.log_backward[-1], nan=0.0, neginf=-745.0),
+                       solution=True)
     history: list[dict[str, float]] = []
     outcome = _attempt(problem, 1.0, options, route, start, history, callback)
     note = _LOG_NOTE if outcome.log_domain else ""
-    if outcome.status != "converged" and options.noise_continuation > 0:
+    if not outcome.stop and outcome.status != "converged" and options.noise_continuation > 0:
         outcome = _noise_continuation(problem, options, route, history, callback)
         note = (f" (by continuation in the noise from {outcome.noise_start:.3g} over "
                 f"{options.noise_continuation} stages)")
-    if (outcome.status != "converged" and options.continuation > 0
+    if (not outcome.stop and outcome.status != "converged" and options.continuation > 0
             and not outcome.bridge.pair.is_zero):
         m = options.continuation
         start = _cold_start(problem)
@@ -448,6 +454,9 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
     if status == "converged":
         message = (f"converged in {it} outer iterations{note}: residual {residual:.2e}, "
                    f"marginal error {solved.sol.marginal_error:.2e}")
+    elif outcome.stop:
+        message = f"not converged: stopped after {it} outer iterations{note}: {outcome.stop}"
+        warnings.warn(ConvergenceWarning(message), stacklevel=3)
     else:
         message = (f"{status.replace('_', ' ')} after {it} outer iterations{note}: last residual "
                    f"{residual:.2e} (tolerance {options.tol:.1e}), marginal error "
@@ -483,10 +492,12 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
     optimal = options.method == "optimal" and interacting
     p_bar, v_bar, log_b = start.p_bar, start.v_bar, start.log_b
     mixer = AndersonMixer(options.anderson, options.damping)
-    inner_tol = options.sinkhorn_tol if not interacting else max(options.sinkhorn_tol, 1e-3)
+    loose = interacting and not start.solution
+    inner_tol = max(options.sinkhorn_tol, 1e-3) if loose else options.sinkhorn_tol
     status, residual, solved, ref = "not_converged", np.inf, None, None
     first: float | None = None
     best, since_best, fraction = np.inf, 0, INNER_FRACTION
+    stall, stop = MarginalStall(options.tol, options.sinkhorn_tol, route), ""
     for _ in range(options.max_iter):
         t0 = time.perf_counter()
         ref = bridge.reference(p_bar, v_bar, step_tail(inner_tol, bridge.k_steps))
@@ -514,14 +525,14 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
                 and not bridge.log_domain):
             status = "stalled"  # the entropic problem cannot be solved to working precision
             break
-        if residual <= options.tol and sol.marginal_error <= max(options.tol, options.sinkhorn_tol):
+        if residual <= options.tol and sol.marginal_error <= options.tol:
             status = "converged"
             break
-        if not interacting:
-            if sol.marginal_error > options.sinkhorn_tol:
-                inner_tol = options.sinkhorn_tol
-                continue
+        stop = stall.check(residual, sol.marginal_error, inner_tol)
+        if stop:
             break
+        if not interacting:
+            continue  # Sinkhorn goes on from log_b
         if residual < best:
             best, since_best = residual, 0
         else:
@@ -541,7 +552,7 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
         if optimal:
             v_bar = x_next[p_bar.size :].reshape(v_bar.shape)
     assert solved is not None and ref is not None
-    return _Outcome(status, solved, ref, v_bar, residual, bridge)
+    return _Outcome(status, solved, ref, v_bar, residual, bridge, stop=stop)
 
 
 def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: np.ndarray,
