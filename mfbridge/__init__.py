@@ -19,10 +19,12 @@ import, as the same module objects (:mod:`mfbridge._moved`).
 from mfbridge import _moved
 from mfbridge.errors import (
     ConvergenceWarning,
+    DiskFullError,
     InputError,
     MFBridgeError,
     MultipleBridgesWarning,
     PrecisionWarning,
+    RunStatusWarning,
 )
 from mfbridge.model.endpoints import Gaussian, GaussianMixture, UniformBox
 from mfbridge.model.grid import Grid
@@ -40,6 +42,7 @@ __all__ = [
     "BridgeProblem",
     "BridgeResult",
     "ConvergenceWarning",
+    "DiskFullError",
     "Gaussian",
     "GaussianMixture",
     "Grid",
@@ -49,6 +52,7 @@ __all__ = [
     "MFBridgeError",
     "MultipleBridgesWarning",
     "PrecisionWarning",
+    "RunStatusWarning",
     "SolverOptions",
     "UniformBox",
     "build_problem",

@@ -19,6 +19,15 @@ class InputError(MFBridgeError, ValueError):
     """A user's input (a density, a parameter, a config option) is not valid."""
 
 
+class DiskFullError(MFBridgeError):
+    """The device a run writes to is full (or over quota); the message names the path."""
+
+
+class RunStatusWarning(UserWarning):
+    """A loaded run is not complete and converged (killed, failed, edited since, or its status
+    is not_converged, diverged or suspect): its numbers are not those of a bridge."""
+
+
 class ConvergenceWarning(UserWarning):
     """An iterative solver stopped before reaching its stated tolerance."""
 

@@ -13,16 +13,20 @@ any object with the :class:`GridLike` attributes.
 
 from __future__ import annotations
 
+import datetime as _dt
+import errno
+import hashlib
 import json
 import os
+import shutil
 import tempfile
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any, Protocol
 
 import numpy as np
 
-from mfbridge.errors import InputError
+from mfbridge.errors import DiskFullError, InputError
 
 FORMAT_VERSION = 1
 UNITS = ("positions in the user's length unit (that of the grid box and of any data files), "
@@ -37,6 +41,7 @@ INTERPRETATION = (
 )
 RESULT_FILE = "result.nc"
 SUMMARY_FILE = "summary.json"
+COMPLETE_FILE = "complete.json"
 #: The statuses of a solve (``BridgeResult.status``): "converged" (tol met on both the
 #: self-consistency residual and the marginal error, sanity checks passed), "not_converged"
 #: (stopped before meeting tol: iteration limit, time budget, stall; best iterate returned),
@@ -257,18 +262,34 @@ class BridgeResult:
         attrs = {"summary": json.dumps(self.summary()), "config": json.dumps(self.config)}
         return xr.Dataset(variables, coords=coords, attrs=attrs)
 
-    def save(self, directory: str | os.PathLike[str]) -> Path:
-        """Write ``result.nc`` and ``summary.json`` into ``directory`` (created if needed).
+    def save(self, directory: str | os.PathLike[str], *, marker: bool = True) -> Path:
+        """Write ``result.nc`` and ``summary.json`` into ``directory`` (created if needed), then
+        (``marker=True``) the completion marker ``complete.json`` with their SHA-256 and the
+        status; the command line writes its own marker after the run record instead.
 
-        Each file is written to a temporary name and renamed, so an interrupted save never leaves
-        a complete-looking but partial result. Returns the directory.
+        Each file is written to a temporary name and renamed, and the marker comes last with
+        the files' hashes, so an interrupted save never leaves a complete-looking but partial
+        result (an older marker no longer matches the files). A
+        full disk raises :class:`~mfbridge.errors.DiskFullError` ("no space left on the device
+        at ..."). Returns the directory.
         """
         out = Path(directory)
-        out.mkdir(parents=True, exist_ok=True)
-        dataset = self.to_dataset()
-        _atomic_write(out / RESULT_FILE, lambda tmp: dataset.to_netcdf(tmp, engine="netcdf4"))
-        text = json.dumps(self.summary(), indent=2, default=_json_default)
-        _atomic_write(out / SUMMARY_FILE, lambda tmp: Path(tmp).write_text(text + "\n"))
+        try:
+            out.mkdir(parents=True, exist_ok=True)
+            dataset = self.to_dataset()
+            _atomic_write(out / RESULT_FILE,
+                          lambda tmp: dataset.to_netcdf(tmp, engine="netcdf4"))
+            text = json.dumps(self.summary(), indent=2, default=_json_default)
+            _atomic_write(out / SUMMARY_FILE, lambda tmp: Path(tmp).write_text(text + "\n"))
+            if marker:
+                write_marker(out, self.status, (RESULT_FILE, SUMMARY_FILE))
+        except (OSError, RuntimeError) as exc:
+            full = disk_full(out, exc, need=sum(np.asarray(v).nbytes for v in (
+                self.density, self.control, self.log_forward, self.log_backward,
+                self.correction)))
+            if full is None:
+                raise
+            raise full from exc
         return out
 
     @classmethod
@@ -351,6 +372,85 @@ def _atomic_write(target: Path, write: Any) -> None:
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
         raise
+
+
+def disk_full(path: Path, exc: BaseException, need: int = 0) -> DiskFullError | None:
+    """The :class:`~mfbridge.errors.DiskFullError` that ``exc``, raised while writing under
+    ``path``, stands for, or ``None``. An ``OSError`` with ``ENOSPC``/``EDQUOT`` is one; the
+    netCDF library reports a full disk only as ``RuntimeError: NetCDF: HDF error``, so any
+    error counts when the device has less room left than ``need`` bytes (or under 1 MB)."""
+    codes = (errno.ENOSPC, getattr(errno, "EDQUOT", errno.ENOSPC))
+    where = path if path.exists() else next((p for p in path.parents if p.exists()), path)
+    try:
+        free: int | None = shutil.disk_usage(where).free
+    except OSError:
+        free = None
+    full = isinstance(exc, OSError) and exc.errno in codes
+    if not full and (free is None or free >= max(need, 1 << 20)):
+        return None
+    room = "" if free is None else f" ({_bytes(free)} free"
+    room += "" if free is None or not need else f", the result needs about {_bytes(need)}"
+    room += "" if free is None else ")"
+    return DiskFullError(f"no space left on the device at {path}{room}: free some space or "
+                         "write the run elsewhere (hydra.run.dir / hydra.sweep.dir)")
+
+
+def _bytes(n: float) -> str:
+    for unit in ("B", "kB", "MB", "GB"):
+        if n < 1000 or unit == "GB":
+            return f"{n:.3g} {unit}" if unit != "B" else f"{int(n)} B"
+        n /= 1000
+    return f"{n:.3g} TB"  # pragma: no cover - the loop returns
+
+
+def sha256(path: str | Path) -> str:
+    """Hex SHA-256 of a file's bytes."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+@dataclass(frozen=True)
+class CompleteMarker:
+    """The content of ``complete.json``: when the run finished, its status and the SHA-256 of
+    its files (the result and summary; in a command-line run folder also the run record)."""
+
+    finished: str
+    status: str
+    sha256: dict[str, str]
+
+
+def write_marker(folder: str | Path, status: str, names: tuple[str, ...],
+                 finished: str | None = None) -> CompleteMarker:
+    """Write ``complete.json`` (atomically, last) for the files ``names`` of ``folder``."""
+    out = Path(folder)
+    marker = CompleteMarker(
+        finished=finished or _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        status=status, sha256={name: sha256(out / name) for name in names})
+    text = json.dumps(asdict(marker), indent=2) + "\n"
+    _atomic_write(out / COMPLETE_FILE, lambda tmp: Path(tmp).write_text(text))
+    return marker
+
+
+def read_marker(folder: str | Path) -> CompleteMarker | None:
+    """The completion marker of a folder, or ``None`` when there is none (the run did not
+    complete) or it is unreadable."""
+    path = Path(folder) / COMPLETE_FILE
+    try:
+        data = json.loads(path.read_text())
+        return CompleteMarker(finished=str(data["finished"]), status=str(data["status"]),
+                              sha256={str(k): str(v) for k, v in dict(data["sha256"]).items()})
+    except (OSError, UnicodeDecodeError, ValueError, KeyError, TypeError, AttributeError):
+        return None
+
+
+def changed_files(folder: str | Path, marker: CompleteMarker) -> list[str]:
+    """Files of a completed run whose bytes no longer match the hashes in its marker."""
+    out = Path(folder)
+    return [name for name, digest in marker.sha256.items()
+            if not (out / name).is_file() or sha256(out / name) != digest]
 
 
 def dataset_summary(ds: Any, source: str) -> dict[str, Any]:

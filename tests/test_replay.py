@@ -168,10 +168,10 @@ def test_run_redoes_a_folder_without_marker(recorded: Path, tmp_path: Path) -> N
     assert records.read_record(folder).started >= before
 
 
-def test_failed_run_is_recorded(tmp_path: Path) -> None:
+def test_refused_run_is_recorded(tmp_path: Path) -> None:
     with pytest.raises(InputError, match="noise must be a positive"):
         run(compose([*SMALL, "noise=-1"]), tmp_path)
     record = records.read_record(tmp_path)
-    assert record.status == "failed"
+    assert record.status == "refused"
     assert "noise must be a positive finite number" in (record.error or "")
     assert records.read_marker(tmp_path) is None

@@ -18,7 +18,7 @@ import xarray as xr
 from omegaconf import OmegaConf
 
 import mfbridge
-from mfbridge import BridgeResult, ConvergenceWarning, InputError, compose
+from mfbridge import BridgeResult, ConvergenceWarning, InputError, RunStatusWarning, compose
 from mfbridge.result import FORMAT_VERSION, RESULT_FILE, SUMMARY_FILE
 from mfbridge.runs.cli import run
 
@@ -457,4 +457,5 @@ def test_non_convergence_is_never_silent(tmp_path: Path,
     summary = json.loads((tmp_path / SUMMARY_FILE).read_text())
     assert summary["status"] == "not_converged"
     assert summary["message"] == result.message
-    assert mfbridge.load(tmp_path).status == "not_converged"
+    with pytest.warns(RunStatusWarning, match="status not_converged: not converged after 1"):
+        assert mfbridge.load(tmp_path).status == "not_converged"

@@ -170,17 +170,18 @@ def test_failed_job_does_not_abort_the_sweep(tmp_path: Path,
     sweep_dir = tmp_path / "sweep"
     done = _sweep(sweep_dir, "noise=-1,0.8", "grid.shape=32", "steps=8", "figures=false",
                   "hydra.launcher.n_jobs=1")
-    assert done.returncode == 0, done.stdout  # a multirun exits 0 even with a failed job
-    assert "job failed in" in done.stdout
+    # the sweep goes on after a refused job and exits with its code (2; mfbridge.runs.exits)
+    assert done.returncode == 2, done.stdout
+    assert "job refused in" in done.stdout
     assert "noise must be a positive finite number, got -1" in done.stdout
-    assert "sweep finished: 1 of 2 runs complete (0 not converged)" in done.stdout
+    assert "sweep finished: 1 of 2 runs complete (1 converged); 1 refused" in done.stdout
     valid = sweep_dir / "figures=False,grid.shape=32,noise=0.8,steps=8"
     failed = sweep_dir / "figures=False,grid.shape=32,noise=-1,steps=8"
     assert records.is_complete(valid)
     assert not records.is_complete(failed)
     record = records.read_record(failed)
-    assert record.status == "failed"
-    assert record.error is not None and record.error.startswith("InputError: noise must be")
+    assert record.status == "refused"
+    assert record.error is not None and record.error.startswith("noise must be")
     stored = mfbridge.load(valid)
     assert stored.status == "converged"
 
@@ -188,11 +189,11 @@ def test_failed_job_does_not_abort_the_sweep(tmp_path: Path,
     written = collect.collect(sweep_dir, figures=False)
     printed = capsys.readouterr().out
     assert f"{sweep_dir}: 2 runs, 1 complete, 1 converged; swept: noise" in printed
-    assert ("  failed: figures=False,grid.shape=32,noise=-1,steps=8: failed: InputError: "
+    assert ("  refused: figures=False,grid.shape=32,noise=-1,steps=8: refused: "
             "noise must be a positive finite number, got -1") in printed
     rows = {float(r["noise"]): r for r in _table(written["table"])}
     assert set(rows) == {0.8, -1.0}  # the failed job has a row, it is not dropped
-    assert rows[-1.0]["status"] == "failed"
+    assert rows[-1.0]["status"] == "refused"
     assert "noise must be a positive finite number" in rows[-1.0]["problem"]
     assert rows[-1.0]["cost"] == ""
     assert rows[0.8]["status"] == "converged"
@@ -205,7 +206,7 @@ def test_failed_single_run_exits_non_zero(tmp_path: Path) -> None:
                           stdout=subprocess.PIPE, stderr=subprocess.STDOUT, check=False)
     assert done.returncode == 2, done.stdout
     assert "noise must be a positive finite number, got -1" in done.stdout
-    assert records.read_record(tmp_path / "run").status == "failed"
+    assert records.read_record(tmp_path / "run").status == "refused"
 
 
 def test_collect_refuses_a_folder_without_runs(tmp_path: Path,

@@ -11,13 +11,15 @@ Hydra is imported only by the runs layer, and only when a function needs it.
 
 from __future__ import annotations
 
+import json
 import math
 import os
+import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-from mfbridge.errors import InputError
+from mfbridge.errors import InputError, RunStatusWarning
 from mfbridge.model.grid import Grid
 from mfbridge.model.potentials import (
     Confinement,
@@ -28,7 +30,14 @@ from mfbridge.model.potentials import (
 from mfbridge.model.problem import BridgeProblem
 from mfbridge.particles.statistics import CheckReport
 from mfbridge.particles.statistics import check as particle_check
-from mfbridge.result import RESULT_FILE, BridgeResult, dataset_summary
+from mfbridge.result import (
+    COMPLETE_FILE,
+    RESULT_FILE,
+    BridgeResult,
+    changed_files,
+    dataset_summary,
+    read_marker,
+)
 from mfbridge.solvers.fixed_point import Iteration, SolverOptions, solve_bridge
 
 CONF_DIR = Path(__file__).resolve().parents[2] / "conf"
@@ -143,10 +152,14 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
     ``callback`` sees every outer iteration of the fixed-point solvers; ``direct_callback``
     every iteration of the direct solver as ``(kind, iteration, J, largest gradient entry)``
     with kind ``"Newton"`` or ``"L-BFGS"``."""
-    from omegaconf import OmegaConf
+    from omegaconf import DictConfig, OmegaConf
 
     from mfbridge.runs.config_checks import check_config
 
+    if not isinstance(cfg, DictConfig):
+        raise InputError(f"solve expects a configuration from mfbridge.compose([...]), got "
+                         f"{type(cfg).__name__} {cfg!r}; to solve a BridgeProblem object use "
+                         "mfbridge.solve_bridge(problem, options)")
     check_config(cfg)
     problem, axes = _problem_and_axes(cfg)
     options = _build(cfg, "solver")
@@ -176,8 +189,9 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
                 result.model["axes"] = axes
             return result
     if not isinstance(options, SolverOptions):
-        raise InputError("the solver group must build a mfbridge.solvers.fixed_point.SolverOptions or "
-                         "a mfbridge.solvers.direct.DirectOptions")
+        raise InputError("the solver group must build a "
+                         "mfbridge.solvers.fixed_point.SolverOptions or a "
+                         "mfbridge.solvers.direct.DirectOptions")
     result = solve_bridge(problem, options, callback, warm_start=warm_start)
     result.config = OmegaConf.to_container(cfg, resolve=True)
     if not result.stopping:
@@ -190,12 +204,20 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
     return result
 
 
-def load(directory: str | os.PathLike[str]) -> BridgeResult:
-    """Read a result written by :meth:`BridgeResult.save` back into a :class:`BridgeResult`
-    (the grid rebuilt as a :class:`~mfbridge.model.grid.Grid`). Raises :class:`InputError` for a
-    missing, incomplete or foreign folder, or another format version."""
+def load(directory: str | os.PathLike[str], *, warn: bool = True) -> BridgeResult:
+    """Read a result written by :meth:`BridgeResult.save` (or a run folder) back into a
+    :class:`BridgeResult` (the grid rebuilt as a :class:`~mfbridge.model.grid.Grid`). Raises
+    :class:`InputError` for a missing, incomplete or foreign folder, or another format version.
+
+    Unless the folder holds a complete run (a completion marker whose SHA-256 hashes match the
+    files) with status ``converged``, a :class:`~mfbridge.errors.RunStatusWarning` says what it
+    is (killed, failed, changed after the run, not converged...): its numbers are then not those
+    of a bridge. ``warn=False`` skips the check."""
     import xarray as xr
 
+    if not isinstance(directory, (str, os.PathLike)):
+        raise InputError(f"load expects the path of a run folder (a str or pathlib.Path), got "
+                         f"{type(directory).__name__} {directory!r}")
     folder = Path(directory)
     path = folder / RESULT_FILE
     if not folder.is_dir():
@@ -211,9 +233,39 @@ def load(directory: str | os.PathLike[str]) -> BridgeResult:
     try:
         g = summary["grid"]
         grid = Grid(lower=tuple(g["lower"]), upper=tuple(g["upper"]), shape=tuple(g["shape"]))
-        return BridgeResult.from_dataset(ds, summary, grid)
+        result = BridgeResult.from_dataset(ds, summary, grid)
     except (KeyError, TypeError, ValueError) as exc:
         raise InputError(f"{path} is not a complete mfbridge result: missing or bad {exc}") from exc
+    if warn:
+        problem = run_problem(folder, result.status, result.message)
+        if problem:
+            warnings.warn(RunStatusWarning(f"{folder}: {problem}"), stacklevel=2)
+    return result
+
+
+def run_problem(folder: str | os.PathLike[str], status: str, message: str = "") -> str:
+    """Why the result in ``folder`` is not a complete, converged run, or ``""`` when it is:
+    no completion marker (with the record's status and error when there is a record), files
+    that changed after the run, or a status other than converged (with its message)."""
+    out = Path(folder)
+    marker = read_marker(out)
+    if marker is None:
+        what = "the run was killed, failed or is still running"
+        try:
+            data = json.loads((out / "record.json").read_text())
+            what = f"record status {data.get('status')!r}" + (
+                f": {data['error']}" if data.get("error") else "")
+        except (OSError, ValueError, AttributeError, TypeError):
+            pass
+        return (f"no completion marker ({COMPLETE_FILE}): {what}; the result may be partial "
+                "or stale")
+    changed = changed_files(out, marker)
+    if changed:
+        return (f"{', '.join(changed)} changed after the run (SHA-256 differs from "
+                f"{COMPLETE_FILE}); the numbers may not be the run's")
+    if status != "converged":
+        return f"status {status}: {message}"
+    return ""
 
 
 # --------------------------------------------------------------------------- particle check

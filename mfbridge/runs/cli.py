@@ -11,7 +11,9 @@ call. A run folder (``hydra.run.dir``, or one sub-folder of ``hydra.sweep.dir`` 
   hashes, times, status, the error of a failed run and the warm start (see
   :mod:`mfbridge.runs.records`);
 * ``complete.json``: the completion marker, written last, with the SHA-256 of the result,
-  summary and record (a folder without it was killed or failed);
+  summary and record, for every solve status (a folder without it was killed, interrupted,
+  refused or failed);
+* ``.mfbridge.lock`` while a process computes into the folder (:mod:`mfbridge.runs.lock`);
 * figures (``density.png``, ``moments.png``, ``convergence.png``; unless ``figures=false``);
 * the log (``mfbridge.log``) and Hydra's own ``.hydra/`` record.
 
@@ -22,29 +24,38 @@ the distance; the first jobs of a sweep, and parallel jobs that start together, 
 ``none`` always starts cold; a path starts from that run folder. ``record.json`` says which run
 was used, or why none was. The answer does not depend on the start beyond the solver tolerance.
 
-Errors: a single run that fails exits with status 2 (an input or solver error) or with
-Hydra's traceback (anything else). In a multirun a failing job is logged and recorded as failed
-in its folder, and the sweep goes on with the other jobs (``mfbridge collect`` lists it).
+Exit codes (:mod:`mfbridge.runs.exits`): 0 converged, 2 refused (bad input, a run folder that
+must not be written, not enough memory), 3 not converged, 4 diverged, 5 suspect, 6 failed, 130
+or 143 interrupted by SIGINT or SIGTERM (one line on stderr, the record says ``interrupted``;
+:mod:`mfbridge.runs.signals`), 1 an unexpected error (with its traceback). In a multirun a job
+that does not converge, fails or is refused is logged and recorded in its folder, the sweep goes
+on with the other jobs (``mfbridge collect`` lists them) and exits with the code of its most
+severe job; SIGTERM/SIGINT stop its workers too.
 """
 
 from __future__ import annotations
 
 import logging
 import os
+import signal
 import sys
 import time
+import warnings
 from dataclasses import asdict
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from mfbridge.runs import records
+from mfbridge.errors import DiskFullError, InputError, MFBridgeError, RunStatusWarning
+from mfbridge.result import COMPLETE_FILE, BridgeResult, disk_full
+from mfbridge.runs import folders, records
 from mfbridge.runs.api import CONF_DIR, solve
-from mfbridge.errors import InputError, MFBridgeError
-from mfbridge.solvers.fixed_point import Iteration
+from mfbridge.runs.exits import EXIT_CODES, exit_code
+from mfbridge.runs.lock import RunLock
 from mfbridge.runs.records import WarmStart
-from mfbridge.result import BridgeResult
+from mfbridge.runs.signals import interruptible, signal_of, stop_workers
+from mfbridge.solvers.fixed_point import Iteration
 
 log = logging.getLogger("mfbridge")
 # ${mfbridge_job_dir:...} names sweep job folders; sweep workers import this module too
@@ -143,21 +154,24 @@ class _LabelFilter(logging.Filter):
 def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None = None,
         sweep_dir: str | Path | None = None) -> BridgeResult:
     """Solve ``cfg``, write the result, the resolved config, the run record and figures into
-    ``output_dir``; return the result.
+    ``output_dir``; return the result (its ``status`` gives the exit code, see
+    :mod:`mfbridge.runs.exits`).
 
-    Resume: when ``output_dir`` already holds a complete run (see :mod:`mfbridge.runs.records`) of the
-    same resolved config, nothing is recomputed and the *loaded* stored result is returned; a
-    complete run of a different config is an :class:`~mfbridge.errors.InputError`. A folder
-    left by a killed or failed run is recomputed. BLAS pools are capped at one thread for the
-    whole run (parallel sweep jobs must not fight over the cores). ``record_extra`` sets fields
-    of the :class:`~mfbridge.runs.records.RunRecord` (e.g. ``replay_of``). ``sweep_dir`` is where
-    the finished runs of the same sweep are looked for a warm start (default: Hydra's
-    ``hydra.sweep.dir`` in a multirun job; see :func:`choose_warm_start`).
+    The folder's lock is held throughout (:mod:`mfbridge.runs.lock`); whether the folder may be
+    written is decided from its record and completion marker (:func:`~mfbridge.runs.folders.
+    prepare`): a complete run of the same resolved config is not recomputed (the *loaded* stored
+    result is returned, whatever its status); an unfinished attempt of the same config is
+    recomputed; anything else is refused with :class:`~mfbridge.runs.folders.RunFolderError`
+    before anything is written. The record ends ``refused`` (an :class:`InputError`: bad input
+    or not enough memory), ``failed`` (any other error), ``interrupted`` (SIGTERM/SIGINT) or
+    with the solve's status, followed by the completion marker; figures are drawn after that,
+    and a figure that cannot be drawn is logged, never changing the result's status. BLAS pools
+    are capped at one thread (parallel sweep jobs must not fight over the cores).
+    ``record_extra`` sets fields of the :class:`~mfbridge.runs.records.RunRecord` (e.g.
+    ``replay_of``). ``sweep_dir`` is where the finished runs of the same sweep are looked for a
+    warm start (default: Hydra's ``hydra.sweep.dir`` in a multirun job).
     """
     from omegaconf import OmegaConf
-    from threadpoolctl import threadpool_limits
-
-    from mfbridge.runs.api import load
 
     out = Path(output_dir)
     config = OmegaConf.to_container(cfg, resolve=True)
@@ -165,81 +179,181 @@ def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None
     label_filter = _LabelFilter(label) if label else None
     if label_filter is not None:
         log.addFilter(label_filter)
+    lock = RunLock(out)
     try:
-        if records.is_complete(out):
-            stored = records.read_record(out)
-            if stored.config != config:
-                raise InputError(
-                    f"{out} already holds a complete run of a different configuration; "
-                    "choose another output folder (hydra.run.dir / hydra.sweep.dir) or delete it"
-                )
-            log.info("complete result already in %s: skipped (delete the folder to recompute)",
-                     out.resolve())
-            return load(out)
-        if sweep_dir is None and (hc := _multirun()) is not None:
-            sweep_dir = hc.sweep.dir
+        with interruptible():
+            folders.check_output_path(out)
+            out.mkdir(parents=True, exist_ok=True)
+            lock.acquire()
+            if folders.prepare(out, config) == "skip":
+                from mfbridge.runs.api import load
+
+                stored = records.read_record(out)
+                log.info("complete result already in %s (%s): skipped (delete the folder to "
+                         "recompute)", out.resolve(), stored.status.replace("_", " "))
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore", RunStatusWarning)
+                    return load(out)
+            return _compute(cfg, config, out, record_extra, sweep_dir)
+    finally:
+        lock.release()
+        if label_filter is not None:
+            log.removeFilter(label_filter)
+
+
+def _figures_flag(cfg: Any) -> bool:
+    """The config's ``figures``: a strict boolean (``figures=no`` reached the config as the
+    string 'no', and drew figures)."""
+    value = cfg.get("figures", True)
+    if not isinstance(value, bool):
+        raise InputError(f"figures must be true or false, got {value!r}; write figures=false "
+                         "(or figures=true)")
+    return value
+
+
+def _compute(cfg: Any, config: dict[str, Any], out: Path,
+             record_extra: dict[str, Any] | None, sweep_dir: str | Path | None
+             ) -> BridgeResult:
+    """The part of :func:`run` that writes into ``out`` (lock held, folder checked)."""
+    from omegaconf import OmegaConf
+    from threadpoolctl import threadpool_limits
+
+    if sweep_dir is None and (hc := _multirun()) is not None:
+        sweep_dir = hc.sweep.dir
+    (out / COMPLETE_FILE).unlink(missing_ok=True)
+    record = records.new_record(config, blas_threads=1, **(record_extra or {}))
+    start = time.perf_counter()
+    try:
+        records.write_record(out, record)
+        (out / "config.yaml").write_text(OmegaConf.to_yaml(cfg, resolve=True))
+        figures = _figures_flag(cfg)
         warm, warm_record = choose_warm_start(config, out,
                                               None if sweep_dir is None else Path(sweep_dir))
+        record.warm_start = asdict(warm_record)
         if warm_record.path is not None:
             log.info("warm start from %s (%s)", warm_record.path,
                      ", ".join(f"{k}: {a} there" for k, (a, _) in
                                warm_record.differences.items()) or "same numbers")
         else:
             log.info("cold start: %s", warm_record.reason)
-        out.mkdir(parents=True, exist_ok=True)
-        records.clear_marker(out)
-        record = records.new_record(config, blas_threads=1, warm_start=asdict(warm_record),
-                                    **(record_extra or {}))
-        records.write_record(out, record)
-        (out / "config.yaml").write_text(OmegaConf.to_yaml(cfg, resolve=True))
-        start = time.perf_counter()
-        try:
-            with threadpool_limits(limits=1):
-                quiet = cfg.get("progress", True) is False
-                result = solve(cfg, callback=None if quiet else _progress, warm_start=warm,
-                               direct_callback=None if quiet else _DirectProgress())
-                result.save(out)
-                log.info("%s", result.message)
-                log.info("cost J = %.8g  (kinetic %.6g, drift %.6g, free-energy change %.6g)",
-                         result.cost, result.cost_kinetic, result.cost_drift,
-                         result.cost_free_energy)
-                for alt in result.alternatives:
-                    log.warning("another bridge (start %s, %s): cost J = %.8g, max L1 distance "
-                                "%.3g to the returned one, mean at T/2 %s", alt.start,
-                                alt.status.replace("_", " "), alt.cost, alt.distance,
-                                np.array2string(alt.mean[len(alt.mean) // 2], precision=4))
-                if cfg.get("figures", True):
-                    from mfbridge.runs.plotting import plot_result
-
-                    for path in plot_result(result, out,
-                                            scale=cfg.get("density_scale", "auto")):
-                        log.info("figure: %s", path)
-        except BaseException as exc:
-            record.status, record.error = "failed", f"{type(exc).__name__}: {exc}"
-            record.finished, record.runtime_seconds = records.now(), time.perf_counter() - start
-            records.write_record(out, record)
-            raise
+        with threadpool_limits(limits=1):
+            quiet = cfg.get("progress", True) is False
+            result = solve(cfg, callback=None if quiet else _progress, warm_start=warm,
+                           direct_callback=None if quiet else _DirectProgress())
+            result.save(out, marker=False)
+        _report(result)
         record.status, record.finished = result.status, records.now()
         record.runtime_seconds = time.perf_counter() - start
         records.write_record(out, record)
-        log.info("run folder: %s", out.resolve())
-        return result
-    finally:
-        if label_filter is not None:
-            log.removeFilter(label_filter)
+    except BaseException as exc:
+        _record_end(out, record, exc, time.perf_counter() - start)
+        raise
+    if figures:
+        _draw_figures(cfg, result, out)
+    log.info("run folder: %s", out.resolve())
+    return result
 
 
-# Subcommands: ``mfbridge NAME ...`` runs ``mfbridge.runs.commands.NAME.main(argv)``; anything else
-# is a Hydra override list for a solve.
+def _report(result: BridgeResult) -> None:
+    """Log the outcome: converged results at INFO, the others as warnings (their cost is not
+    that of a bridge)."""
+    level = logging.INFO if result.converged else logging.WARNING
+    log.log(level, "%s", result.message)
+    cost = "cost J" if result.converged else f"cost J of the {result.status.replace('_', ' ')} " \
+                                            "iterate (not a bridge's)"
+    log.log(level, "%s = %.8g  (kinetic %.6g, drift %.6g, free-energy change %.6g)", cost,
+            result.cost, result.cost_kinetic, result.cost_drift, result.cost_free_energy)
+    for alt in result.alternatives:
+        log.warning("another bridge (start %s, %s): cost J = %.8g, max L1 distance "
+                    "%.3g to the returned one, mean at T/2 %s", alt.start,
+                    alt.status.replace("_", " "), alt.cost, alt.distance,
+                    np.array2string(alt.mean[len(alt.mean) // 2], precision=4))
+
+
+def _record_end(out: Path, record: records.RunRecord, exc: BaseException,
+                seconds: float) -> None:
+    """Write the record of a run that ended in ``exc``: interrupted, refused or failed."""
+    if isinstance(exc, KeyboardInterrupt):
+        record.status = "interrupted"
+        record.error = f"interrupted by {signal.Signals(signal_of(exc)).name}"
+    elif isinstance(exc, InputError):
+        record.status, record.error = "refused", str(exc)
+    else:
+        if isinstance(exc, OSError | RuntimeError) and not isinstance(exc, DiskFullError):
+            exc = disk_full(out, exc) or exc
+        record.status, record.error = "failed", f"{type(exc).__name__}: {exc}"
+    record.finished, record.runtime_seconds = records.now(), seconds
+    try:
+        records.write_record(out, record)
+    except OSError as write_error:
+        full = disk_full(out, write_error)
+        log.error("could not record the end of the run in %s (%s): its record may still say "
+                  "'running'; with no completion marker it is never taken for a finished run",
+                  out, full or write_error)
+
+
+def _draw_figures(cfg: Any, result: BridgeResult, out: Path) -> None:
+    """Draw the run's figures; a failure (a full disk...) is logged and changes nothing else:
+    the result is saved and complete already."""
+    from mfbridge.runs.plotting import plot_result
+
+    try:
+        for path in plot_result(result, out, scale=cfg.get("density_scale", "auto")):
+            log.info("figure: %s", path)
+    except Exception as exc:
+        reason = disk_full(out, exc) or f"{type(exc).__name__}: {exc}"
+        log.warning("figures not drawn (%s); the result in %s is saved and complete: draw "
+                    "them again with mfbridge.runs.plotting.plot_result(mfbridge.load(...), "
+                    "folder)", reason, out)
+
+
+# Subcommands: ``mfbridge NAME ...`` runs ``mfbridge.runs.commands.NAME.main(argv)``; anything
+# else is a Hydra override list for a solve.
 SUBCOMMANDS: dict[str, str] = {
     "check": "mfbridge.runs.commands.check",
     "replay": "mfbridge.runs.commands.replay",
     "collect": "mfbridge.runs.commands.collect",
 }
+# the process that runs main(); a sweep's worker processes import this module but are not it
+_MAIN_PID: int | None = None
+
+
+def _output_overrides(argv: list[str]) -> list[str]:
+    """The folders named by hydra.run.dir=/hydra.sweep.dir= overrides (no interpolations)."""
+    found = []
+    for arg in argv:
+        key, sep, value = arg.lstrip("+~").partition("=")
+        if sep and key in ("hydra.run.dir", "hydra.sweep.dir") and value and "${" not in value:
+            found.append(value.strip("'\""))
+    return found
+
+
+def _interrupted(exc: BaseException, multirun: bool) -> int:
+    """Print the one line of an interruption; return the exit code (128 + signal)."""
+    from mfbridge.runs.exits import signal_exit_code
+    from mfbridge.runs.sweeps import LAST, split_entries, summary_line, sweep_jobs
+
+    signum = signal_of(exc)
+    name = signal.Signals(signum).name
+    if multirun and LAST.sweep_dir is not None:
+        for entry in split_entries(LAST.sweep_dir)[0]:
+            folders.mark_interrupted(entry.folder, f"interrupted by {name} (sweep stopped)")
+        ours, _ = split_entries(LAST.sweep_dir)
+        jobs = sweep_jobs(LAST.sweep_dir)
+        sys.stderr.write(f"mfbridge: interrupted by {name}: "
+                         f"{summary_line(ours, None if jobs is None else len(jobs))} in "
+                         f"{LAST.sweep_dir}; run the same command again to resume\n")
+    else:
+        sys.stderr.write(f"mfbridge: interrupted by {name}; the run is recorded as "
+                         "interrupted (run the same command again to recompute it)\n")
+    return signal_exit_code(signum)
 
 
 def main() -> None:
-    """Console entry point (``mfbridge``, ``python -m mfbridge``)."""
+    """Console entry point (``mfbridge``, ``python -m mfbridge``); exit codes in
+    :mod:`mfbridge.runs.exits`."""
+    global _MAIN_PID
+    _MAIN_PID = os.getpid()
     if sys.argv[1:] in (["--help"], ["-h"], ["help"]):
         from mfbridge.runs.cli_help import help_text
 
@@ -263,10 +377,27 @@ def main() -> None:
     from mfbridge.runs.config_checks import override_mistakes
 
     mistakes = override_mistakes(sys.argv[1:])
+    for folder in _output_overrides(sys.argv[1:]):
+        try:
+            folders.check_output_path(folder)
+        except InputError as exc:
+            mistakes.append(str(exc))
     if mistakes:
         sys.stderr.write("".join(f"mfbridge: error: {m}\n" for m in mistakes))
-        sys.exit(2)
+        sys.exit(EXIT_CODES["refused"])
+    multirun = any(a in ("-m", "--multirun") for a in sys.argv[1:])
+    try:
+        with interruptible(stop_workers if multirun else None):
+            _hydra_app()
+    except KeyboardInterrupt as exc:
+        sys.exit(_interrupted(exc, multirun))
+    if multirun:
+        from mfbridge.runs.sweeps import LAST
 
+        sys.exit(LAST.exit_code or 0)
+
+
+def _hydra_app() -> None:
     import hydra
     from hydra.core.hydra_config import HydraConfig
     from hydra.types import RunMode
@@ -276,20 +407,26 @@ def main() -> None:
         hc = HydraConfig.get()
         output_dir = hc.runtime.output_dir
         if hc.mode == RunMode.MULTIRUN:
-            # One failing job must not abort the sweep: run() has already recorded it as
-            # failed in its folder (collect lists it); log it and let the launcher go on.
+            # One failing job must not abort the sweep: run() has already recorded it in its
+            # folder (collect lists it); log it and let the launcher go on.
             try:
                 run(cfg, output_dir)
+            except KeyboardInterrupt as exc:
+                if os.getpid() != _MAIN_PID:  # a worker: its job is recorded, stop it now
+                    os._exit(128 + signal_of(exc))
+                raise
             except Exception as exc:  # any job error is reported, not raised
                 detail = "" if isinstance(exc, MFBridgeError) else f" ({type(exc).__name__})"
-                log.error("job failed%s in %s: %s", detail, output_dir, exc,
+                log.error("job %s in %s: %s", "refused" if isinstance(exc, InputError)
+                          else "failed" + detail, output_dir, exc,
                           exc_info=not isinstance(exc, MFBridgeError))
             return
         try:
-            run(cfg, output_dir)
+            result = run(cfg, output_dir)
         except MFBridgeError as exc:
             log.error("%s", exc)
-            sys.exit(2)
+            sys.exit(EXIT_CODES["refused" if isinstance(exc, InputError) else "failed"])
+        sys.exit(exit_code(result.status))
 
     app()
 

@@ -37,21 +37,33 @@ from pathlib import Path
 from typing import Any
 
 from mfbridge.errors import InputError, is_real_number
-from mfbridge.result import RESULT_FILE, SUMMARY_FILE, _atomic_write
+from mfbridge.result import (
+    COMPLETE_FILE,
+    RESULT_FILE,
+    STATUSES,
+    SUMMARY_FILE,
+    _atomic_write,
+    changed_files,
+    read_marker,
+    sha256,
+    write_marker,
+)
 
 log = logging.getLogger("mfbridge")
 
 RECORD_FILE = "record.json"
-COMPLETE_FILE = "complete.json"
 RECORD_FORMAT = 1
 # Distribution names whose versions a record keeps (import name in brackets where it differs).
 PACKAGES: tuple[str, ...] = (
     "mfbridge", "numpy", "scipy", "pot", "torch", "hydra-core", "omegaconf", "xarray",
     "netcdf4", "threadpoolctl",
 )
-# Statuses of a run that wrote its result (a non-converged result is complete: re-running the
-# same config gives the same answer); "running" and "failed" runs have no completion marker.
-FINISHED = ("converged", "not_converged")
+# A run that wrote its result has one of the solve STATUSES and a completion marker; re-running
+# the same config gives the same answer, so a resume skips it whatever its status. A run that
+# did not has one of RUN_STATUSES ("running": being computed, or killed - its lock says which)
+# and no marker; a resume computes it again.
+FINISHED = STATUSES
+RUN_STATUSES = ("running", "failed", "refused", "interrupted")
 
 
 @dataclass
@@ -85,15 +97,6 @@ class RunRecord:
     replay_of: str | None = None
     warm_start: dict[str, Any] | None = None
     format_version: int = RECORD_FORMAT
-
-
-@dataclass(frozen=True)
-class CompleteMarker:
-    """The content of ``complete.json``: when the run finished and the SHA-256 of its files."""
-
-    finished: str
-    status: str
-    sha256: dict[str, str]
 
 
 # ------------------------------------------------------------------------------ environment
@@ -134,15 +137,6 @@ def git_state(directory: str | Path | None = None) -> dict[str, Any] | None:
     except (OSError, subprocess.SubprocessError):
         dirty = None
     return {"commit": commit, "dirty": dirty}
-
-
-def sha256(path: str | Path) -> str:
-    """Hex SHA-256 of a file's bytes."""
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def input_files(config: Any, base: str | Path | None = None) -> dict[str, dict[str, str]]:
@@ -277,16 +271,9 @@ def write_record(folder: str | Path, record: RunRecord) -> Path:
     out = Path(folder)
     _write_json(out / RECORD_FILE, asdict(record))
     if record.status in FINISHED:
-        files = {name: sha256(out / name) for name in (RESULT_FILE, SUMMARY_FILE, RECORD_FILE)}
-        marker = CompleteMarker(finished=record.finished or now(), status=record.status,
-                                sha256=files)
-        _write_json(out / COMPLETE_FILE, asdict(marker))
+        write_marker(out, record.status, (RESULT_FILE, SUMMARY_FILE, RECORD_FILE),
+                     record.finished or now())
     return out / RECORD_FILE
-
-
-def clear_marker(folder: str | Path) -> None:
-    """Remove the completion marker (before a folder's result is rewritten)."""
-    (Path(folder) / COMPLETE_FILE).unlink(missing_ok=True)
 
 
 def _read_json(path: Path, what: str) -> dict[str, Any]:
@@ -319,31 +306,6 @@ def read_record(folder: str | Path) -> RunRecord:
     return RunRecord(**{k: v for k, v in data.items() if k in known})
 
 
-def read_marker(folder: str | Path) -> CompleteMarker | None:
-    """The completion marker of a run folder, or ``None`` when the run did not complete (or the
-    marker is unreadable)."""
-    path = Path(folder) / COMPLETE_FILE
-    if not path.is_file():
-        return None
-    try:
-        data = _read_json(path, "the completion marker")
-        return CompleteMarker(finished=str(data["finished"]), status=str(data["status"]),
-                              sha256=dict(data["sha256"]))
-    except (InputError, KeyError, TypeError, ValueError):
-        return None
-
-
-def changed_files(folder: str | Path, marker: CompleteMarker) -> list[str]:
-    """Files of a completed run whose bytes no longer match the hashes in its marker."""
-    out = Path(folder)
-    changed = []
-    for name, digest in marker.sha256.items():
-        path = out / name
-        if not path.is_file() or sha256(path) != digest:
-            changed.append(name)
-    return changed
-
-
 def is_complete(folder: str | Path) -> bool:
     """Whether the folder holds a finished run whose files are as the run left them."""
     marker = read_marker(folder)
@@ -363,6 +325,16 @@ class RunEntry:
     complete: bool
     problem: str | None = None
 
+    @property
+    def status(self) -> str:
+        """The record's status; ``"running"`` of a killed run is ``"killed"``, an unreadable
+        record ``"unreadable"``."""
+        if self.record is None:
+            return "unreadable"
+        if self.record.status == "running" and (self.problem or "").startswith("killed"):
+            return "killed"
+        return self.record.status
+
 
 def scan_sweep(sweep_dir: str | Path) -> list[RunEntry]:
     """Every job folder under ``sweep_dir`` (a folder with a Hydra ``.hydra/`` record or a run
@@ -378,16 +350,27 @@ def scan_sweep(sweep_dir: str | Path) -> list[RunEntry]:
             entries.append(RunEntry(folder, None, False, str(exc)))
             continue
         complete = is_complete(folder)
-        problem = None
-        if not complete:
-            if record.status == "failed":
-                problem = f"failed: {record.error}"
-            elif record.status == "running":
-                problem = "did not finish (killed or still running: no completion marker)"
-            else:
-                problem = "files changed after the run (hashes differ from complete.json)"
-        entries.append(RunEntry(folder, record, complete, problem))
+        entries.append(RunEntry(folder, record, complete,
+                                None if complete else _problem(folder, record)))
     return entries
+
+
+def _problem(folder: Path, record: RunRecord) -> str:
+    """What is wrong with a run folder that is not complete, from its record, marker and lock."""
+    if (folder / COMPLETE_FILE).is_file():
+        return f"files changed after the run (hashes differ from {COMPLETE_FILE})"
+    if record.status in ("failed", "refused", "interrupted"):
+        return f"{record.status}: {record.error}"
+    if record.status == "running":
+        from mfbridge.runs.lock import owner
+
+        held = owner(folder)
+        if held is not None and held.alive():
+            return f"running ({held.describe()})"
+        return ("killed: recorded as running, but no live process holds its lock "
+                "(no completion marker)")
+    return (f"status {record.status!r} but no completion marker: the run stopped between "
+            "saving its result and finishing its record")
 
 
 #: Longest job folder name kept as Hydra writes it (``key=value,...``); longer ones, and any
@@ -447,65 +430,14 @@ def register_resolvers() -> None:
         OmegaConf.register_new_resolver("mfbridge_job_dir", job_dir_name)
 
 
-def expected_jobs(config: Any) -> list[list[str]] | None:
-    """The override lists of the jobs a basic-sweeper multirun launches, from the task
-    overrides of its (Hydra) ``config``; ``None`` when they cannot be worked out."""
-    try:
-        from hydra._internal.core_plugins.basic_sweeper import BasicSweeper
-        from hydra.core.override_parser.overrides_parser import OverridesParser
+def __getattr__(name: str) -> Any:
+    """:class:`~mfbridge.runs.sweeps.SweepProgress` and ``expected_jobs`` live in
+    :mod:`mfbridge.runs.sweeps`; configs and run folders name them here."""
+    if name in ("SweepProgress", "expected_jobs"):
+        from mfbridge.runs import sweeps
 
-        parsed = OverridesParser.create().parse_overrides(list(config.hydra.overrides.task))
-        return [list(job) for batch in BasicSweeper.split_arguments(parsed, None)
-                for job in batch]
-    except Exception:  # another sweeper, or a Hydra without these internals
-        return None
-
-
-def _count_jobs(config: Any) -> int | None:
-    jobs = expected_jobs(config)
-    return None if jobs is None else len(jobs)
-
-
-try:
-    from hydra.experimental.callback import Callback as _Callback
-except ImportError:  # pragma: no cover - hydra is a dependency
-    _Callback = object  # type: ignore[assignment,misc]
-
-
-class SweepProgress(_Callback):  # type: ignore[misc,valid-type]
-    """Hydra callback: after each job, log how many runs of the sweep are complete; at the end
-    of a multirun, log a summary (complete, not converged, failed) and the collect command."""
-
-    JOBS_FILE = "sweep.json"
-
-    def on_multirun_start(self, config: Any, **kwargs: Any) -> None:
-        sweep_dir = Path(config.hydra.sweep.dir)
-        sweep_dir.mkdir(parents=True, exist_ok=True)
-        _write_json(sweep_dir / self.JOBS_FILE, {"jobs": _count_jobs(config), "started": now()})
-
-    def on_job_end(self, config: Any, job_return: Any = None, **kwargs: Any) -> None:
-        if str(config.hydra.mode) != "RunMode.MULTIRUN":
-            return
-        sweep_dir = Path(config.hydra.sweep.dir)
-        done = sum(entry.complete for entry in scan_sweep(sweep_dir))
-        try:
-            total = json.loads((sweep_dir / self.JOBS_FILE).read_text()).get("jobs")
-        except (OSError, ValueError):
-            total = None
-        of = f" of {total}" if total else ""
-        log.info("sweep progress: %d%s runs complete in %s", done, of, sweep_dir)
-
-    def on_multirun_end(self, config: Any, **kwargs: Any) -> None:
-        sweep_dir = Path(config.hydra.sweep.dir)
-        entries = scan_sweep(sweep_dir)
-        complete = [e for e in entries if e.complete]
-        not_converged = [e for e in complete if e.record and e.record.status != "converged"]
-        log.info("sweep finished: %d of %d runs complete (%d not converged) in %s",
-                 len(complete), len(entries), len(not_converged), sweep_dir)
-        for entry in entries:
-            if not entry.complete:
-                log.warning("incomplete run %s: %s", entry.folder, entry.problem)
-        log.info("collect with: mfbridge collect %s", sweep_dir)
+        return getattr(sweeps, name)
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
 # ------------------------------------------------------------------------------ warm starts
@@ -586,6 +518,8 @@ def warm_differences(theirs: dict[str, Any], ours: dict[str, Any]
 def _sweep_values(sweep_dir: Path, configs: list[dict[str, Any]]) -> dict[str, list[float]]:
     """Numeric values each config entry takes over a sweep: the jobs of ``multirun.yaml`` (when
     readable) and ``configs``."""
+    from mfbridge.runs.sweeps import expected_jobs
+
     values: dict[str, list[float]] = {}
     for config in configs:
         for key, value in flatten(config).items():

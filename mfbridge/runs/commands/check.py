@@ -1,10 +1,12 @@
 """``mfbridge check RUN_DIR``: drive N interacting particles with a saved bridge's control.
 
 Loads the result in RUN_DIR (refusing, with exit code 2, a folder that is missing, incomplete or
-from another format version), rebuilds the model from its resolved config, runs
+from another format version, and a run that is not complete and converged unless ``--force``:
+see :func:`mfbridge.runs.api.run_problem`), rebuilds the model from its resolved config, runs
 :func:`mfbridge.particles.check`, prints the convergence table and writes ``check.json`` and the
 figures ``check_histograms.png``, ``check_clouds.png``, ``check_convergence.png`` into RUN_DIR
-(each written to a temporary file and renamed).
+(each written to a temporary file and renamed). A simulation that gives NaN or infinite
+numbers (a model force that is not finite) writes nothing and exits 6.
 """
 
 from __future__ import annotations
@@ -20,6 +22,7 @@ from pathlib import Path
 from typing import Any
 
 from mfbridge.errors import InputError, MFBridgeError
+from mfbridge.runs.exits import EXIT_CODES
 
 CHECK_FILE = "check.json"
 FIGURES = ("check_histograms.png", "check_clouds.png", "check_convergence.png")
@@ -41,6 +44,9 @@ def _parser() -> argparse.ArgumentParser:
     parser.add_argument("--pairs", choices=("auto", "exact", "grid"), default="auto",
                         help="pair forces: exact O(N^2) sums or grid convolution (default: auto)")
     parser.add_argument("--no-figures", action="store_true", help="write no figures")
+    parser.add_argument("--force", action="store_true",
+                        help="check a run that is not complete and converged (killed, failed, "
+                             "changed after the run, not converged, diverged, suspect)")
     parser.add_argument("--quiet", action="store_true",
                         help="no progress lines on stderr (one per particle number and seed)")
     return parser
@@ -73,21 +79,41 @@ def _clean(value: Any) -> Any:
 
 
 def main(argv: list[str] | None = None) -> int:
-    """Run the check; 0 on success, 2 on a user error (message on stderr)."""
+    """Run the check; 0 on success, 2 when refused (a user error, or a run that is not
+    complete and converged without ``--force``), 6 when the simulation gives non-finite
+    numbers (message on stderr)."""
     args = _parser().parse_args(argv)
     try:
         return _main(args)
     except MFBridgeError as exc:
         print(f"mfbridge check: error: {exc}", file=sys.stderr)
-        return 2
+        return EXIT_CODES["refused" if isinstance(exc, InputError) else "failed"]
+
+
+def _non_finite(report_data: dict[str, Any]) -> list[str]:
+    """Names of the table's numbers that are NaN or infinite (first row where each occurs)."""
+    bad = []
+    for row in report_data.get("table", []):
+        for key, value in row.items():
+            if isinstance(value, float) and not math.isfinite(value) and key not in bad:
+                bad.append(key)
+    return bad
 
 
 def _main(args: argparse.Namespace) -> int:
     from mfbridge.particles import check
-    from mfbridge.runs.api import load, model_from_config
+    from mfbridge.runs.api import load, model_from_config, run_problem
 
     folder = Path(args.run_dir)
-    result = load(folder)
+    result = load(folder, warn=False)
+    problem = run_problem(folder, result.status, result.message)
+    if problem and not args.force:
+        raise InputError(f"{folder} is not a complete, converged run: {problem}. Its control "
+                         "is not that of a bridge, so the particles would check nothing; pass "
+                         "--force to simulate them anyway")
+    if problem:
+        print(f"mfbridge check: warning: {folder}: {problem} (checked anyway: --force)",
+              file=sys.stderr)
     if not result.config:
         raise InputError(f"{folder} records no resolved config: cannot rebuild the model "
                          "(use mfbridge.check(result, confinement=..., interaction=...))")
@@ -99,6 +125,13 @@ def _main(args: argparse.Namespace) -> int:
                    seeds=args.seed, substeps=args.substeps, pair_mode=args.pairs,
                    progress=None if args.quiet else progress)
     print(report.table_text())
+    bad = _non_finite(report.to_dict())
+    if bad:
+        raise MFBridgeError(
+            f"the particle simulation gave non-finite values ({', '.join(bad)}): the model's "
+            "forces are NaN or infinite somewhere the particles went (check the gradient of "
+            "the confinement and interaction, e.g. a user potential's autograd), or the time "
+            "step is too coarse (--substeps); nothing was written")
     data = _clean(report.to_dict())
     data["run_dir"] = str(folder.resolve())
     text = json.dumps(data, indent=2)

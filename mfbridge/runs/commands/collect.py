@@ -1,7 +1,7 @@
 """``mfbridge collect SWEEP_DIR``: one table, one labelled dataset and figures for a sweep.
 
-Reads every job folder under ``SWEEP_DIR`` (see :func:`mfbridge.runs.records.scan_sweep`) and writes,
-into ``SWEEP_DIR/collected/`` (or ``--out``):
+Reads every job folder under ``SWEEP_DIR`` (see :func:`mfbridge.runs.records.scan_sweep`) and
+writes, into ``SWEEP_DIR/collected/`` (or ``--out``):
 
 * ``runs.csv``: one row per run: the swept values, status, cost and its parts, iterations,
   residual, runtime and a few summaries of the flow (mean and standard deviation of the first
@@ -123,18 +123,16 @@ def collect_rows(sweep_dir: Path) -> tuple[list[str], list[Row], list[Any]]:
     rows: list[Row] = []
     results: list[Any] = []
     for entry in entries:
-        overrides = dict(_split_override(t) for t in
-                         ((entry.record.overrides or []) if entry.record else []))
+        overrides = dict(_split_override(t) for t in _overrides_of(entry))
         choices = (entry.record.choices or {}) if entry.record else {}
         params = {k: (choices[k] if k in choices else
                       _parse_value(overrides[k]) if k in overrides else None) for k in keys}
         name = str(entry.folder.relative_to(sweep_dir))
         if not entry.complete:
-            rows.append(Row(name, params, "failed" if entry.record and
-                            entry.record.status == "failed" else "incomplete",
-                            entry.problem or ""))
+            # failed, refused, interrupted, killed, running (elsewhere) or unreadable
+            rows.append(Row(name, params, entry.status, entry.problem or ""))
             continue
-        result = load(entry.folder)
+        result = load(entry.folder, warn=False)
         numbers = _summaries(result)
         if entry.record and entry.record.runtime_seconds is not None:
             numbers["runtime_s"] = float(entry.record.runtime_seconds)
@@ -150,11 +148,24 @@ def collect_rows(sweep_dir: Path) -> tuple[list[str], list[Row], list[Any]]:
     return keys, rows, results
 
 
+def _overrides_of(entry: RunEntry) -> list[str]:
+    """A job's overrides: from its record, or, when the record is unreadable, from Hydra's
+    ``.hydra/overrides.yaml`` (so the job is not also counted as never started)."""
+    if entry.record is not None:
+        return list(entry.record.overrides or [])
+    try:
+        from omegaconf import OmegaConf
+
+        return [str(o) for o in OmegaConf.load(entry.folder / ".hydra" / "overrides.yaml")]
+    except Exception:  # no Hydra record either: the row has no parameters
+        return []
+
+
 def _never_started(sweep_dir: Path, keys: list[str], rows: list[Row]) -> list[Row]:
     """Rows for the jobs that ``multirun.yaml`` asks for but that have no folder at all."""
     from omegaconf import OmegaConf
 
-    from mfbridge.runs.records import expected_jobs
+    from mfbridge.runs.sweeps import expected_jobs
 
     multirun = sweep_dir / "multirun.yaml"
     if not multirun.is_file():
@@ -249,7 +260,8 @@ def plot_cost(path: Path, keys: list[str], rows: list[Row]) -> Path:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    done = [r for r in rows if r.numbers]
+    # a diverged run's cost is that of a blown-up iterate: listed, not drawn
+    done = [r for r in rows if r.numbers and r.status != "diverged"]
     axes_keys = keys or ["run"]
     fig, axes = plt.subplots(1, len(axes_keys), figsize=(4.5 * len(axes_keys), 3.6),
                              squeeze=False)
@@ -393,7 +405,7 @@ def plot_densities(path: Path, keys: list[str], rows: list[Row], results: list[A
             ax.set_xlabel("x0")
             ax.set_ylabel("x1")
         ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(4))
-        flag = "" if result.converged else " (not converged)"
+        flag = "" if result.converged else f" ({result.status.replace('_', ' ')})"
         ax.set_title(f"{_label(row, keys)}\nJ = {result.cost:.5g}{flag}", fontsize=8)
     if image is not None:
         dim = res[0].grid.dim

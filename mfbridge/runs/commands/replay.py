@@ -95,8 +95,8 @@ def _version_warnings(recorded: dict[str, str | None]) -> list[str]:
 
 def _recorded_warm_start(warm: dict[str, Any] | None) -> str:
     """The ``warm_start`` config value that repeats the recorded start, printing what it does."""
-    from mfbridge.runs import records
     from mfbridge.result import RESULT_FILE
+    from mfbridge.runs import records
 
     path = (warm or {}).get("path")
     if not path:
@@ -132,8 +132,8 @@ def replay(run_dir: Path, out: Path | None, tol: float, figures: bool) -> int:
     from omegaconf import OmegaConf
 
     from mfbridge.runs import records
-    from mfbridge.runs.cli import run
     from mfbridge.runs.api import load
+    from mfbridge.runs.cli import run
 
     if not tol >= 0:
         raise InputError(f"--tol must be a non-negative number, got {tol}")
@@ -142,7 +142,7 @@ def replay(run_dir: Path, out: Path | None, tol: float, figures: bool) -> int:
     if marker is None:
         raise InputError(f"{run_dir} holds no completed run (no {records.COMPLETE_FILE}; "
                          f"record status {record.status!r}): there is no result to compare with")
-    stored = load(run_dir)
+    stored = load(run_dir, warn=False)
     changed = records.changed_files(run_dir, marker)
     if out is None:
         stamp = _dt.datetime.now().strftime("%Y-%m-%d_%H-%M-%S")
@@ -153,6 +153,9 @@ def replay(run_dir: Path, out: Path | None, tol: float, figures: bool) -> int:
     print(f"replaying {run_dir} into {out}")
     for line in _version_warnings(record.versions):
         print(f"warning: package version differs: {line}")
+    if stored.status != "converged":
+        print(f"note: the stored run ended {stored.status.replace('_', ' ')}: the replay "
+              "reproduces that iterate (and status), not a bridge")
     if changed:
         print(f"warning: {', '.join(changed)} in {run_dir} changed after the run "
               f"(SHA-256 differs from {records.COMPLETE_FILE})")
@@ -171,6 +174,11 @@ def replay(run_dir: Path, out: Path | None, tol: float, figures: bool) -> int:
     print(f"mean:    max |stored - replayed| = {result.mean:.3g}")
     print(f"cost:    stored {result.stored_cost:.12g}, replayed {result.replayed_cost:.12g}, "
           f"|difference| = {result.cost:.3g}")
+    if stored.status != "converged" or replayed.status != stored.status:
+        print(f"status:  stored {stored.status}, replayed {replayed.status}")
+    if replayed.status != stored.status:
+        print("verdict: DIFFERENT: the replay ended with another status")
+        return 1
     if result.identical:
         print(f"verdict: REPRODUCED bit for bit (tolerance {tol:g})")
         return 0
