@@ -1,6 +1,9 @@
 """Direct solver bench: cross-check against the main solver (chi = rho), timings, and a worked
 example comparing exclusion and independent-walker bridges between the same two profiles.
 
+``--previous`` also times the earlier minimisers in the same run (1D truncated Newton, 2D
+L-BFGS: the 64x64 x 8 case alone takes 6-16 minutes), for before/after ratios.
+
 Scenario (ours): tagged particles in a narrow channel. A channel segment [-4, 4] with a weak
 harmonic restoring force holds a crowded plug on the left (mean occupation up to 0.85 per site);
 one time unit later the plug is observed spread over the right half. Exclusion particles cannot
@@ -37,6 +40,19 @@ from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
 OUT = output_dir(Path(__file__).resolve().parent / "results")
 
 
+PREVIOUS = "--previous" in sys.argv[1:]
+
+
+def _timed(problem: BridgeProblem, options: DirectOptions) -> tuple[object, float]:
+    import warnings
+
+    t0 = time.perf_counter()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        result = solve_direct(problem, options)
+    return result, time.perf_counter() - t0
+
+
 def cross_check(n: int, k: int) -> list[str]:
     rows = []
     cases = [
@@ -51,9 +67,11 @@ def cross_check(n: int, k: int) -> list[str]:
         t0 = time.perf_counter()
         main = solve_bridge(problem, SolverOptions())
         t_main = time.perf_counter() - t0
-        t0 = time.perf_counter()
-        direct = solve_direct(problem, DirectOptions())
-        t_direct = time.perf_counter() - t0
+        direct, t_direct = _timed(problem, DirectOptions())
+        previous = ""
+        if PREVIOUS:
+            old, t_old = _timed(problem, DirectOptions(method="truncated"))
+            previous = f" | {t_old:.1f} ({old.iterations} it; J {old.cost / direct.cost - 1:+.1e})"
         # the main solver can fail on coarse grids (reported, not hidden)
         gap = direct.cost / main.cost - 1 if main.cost > 0 else float("nan")
         if main.cost <= 0:
@@ -65,8 +83,8 @@ def cross_check(n: int, k: int) -> list[str]:
                            cov0=0.16, mean1=1.2, cov1=0.49, times=k + 1)
             exact = f"{ex.cost:.6f} (direct {direct.cost / ex.cost - 1:+.2e})"
         rows.append(f"| {label} | {n} x {k} | {main.cost:.6f} | {direct.cost:.6f} | {gap:+.2e} | "
-                    f"{dens:.2e} | {exact or '—'} | {t_main:.1f} | {t_direct:.1f} "
-                    f"({direct.iterations} it) |")
+                    f"{dens:.2e} | {exact or '—'} | {t_main:.2f} | {t_direct:.1f} "
+                    f"({direct.iterations} it) | {t_direct / t_main:.1f}{previous} |")
         print(rows[-1], flush=True)
     return rows
 
@@ -79,40 +97,22 @@ def problem_2d(n: int, k: int) -> BridgeProblem:
 
 
 def cross_check_2d(n: int, k: int) -> str:
+    """The 2D case at tol 1e-7: main solver, the Newton method, and (--previous) L-BFGS."""
     problem = problem_2d(n, k)
     t0 = time.perf_counter()
     main = solve_bridge(problem, SolverOptions())
     t_main = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    direct = solve_direct(problem, DirectOptions(tol=1e-7))
-    t_direct = time.perf_counter() - t0
+    direct, t_direct = _timed(problem, DirectOptions(tol=1e-7))
     dens = np.abs(main.density - direct.density).max() / main.density.max()
-    row = (f"| 2D Gaussian core W (1, 0.7) | {n}x{n} x {k} | {main.cost:.6f} | {direct.cost:.6f} | "
-           f"{direct.cost / main.cost - 1:+.2e} | {dens:.2e} | — | {t_main:.1f} | "
-           f"{t_direct:.1f} ({direct.iterations} it, {direct.status}) |")
-    print(row, flush=True)
-    return row
-
-
-def timing_2d(n: int, k: int, iterations: int) -> str:
-    """Seconds per L-BFGS iteration on an n x n grid (a capped run: full convergence takes
-    thousands of iterations)."""
-    import warnings
-
-    problem = problem_2d(n, k)
-    t0 = time.perf_counter()
-    main = solve_bridge(problem, SolverOptions())
-    t_main = time.perf_counter() - t0
-    t0 = time.perf_counter()
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        direct = solve_direct(problem, DirectOptions(max_iter=iterations,
-                                                     warm_start="displacement"))
-    t_direct = time.perf_counter() - t0
-    solve_s = direct.timings["solve"]
-    row = (f"| {n}x{n} x {k} | {t_main:.1f} | {main.cost:.6f} | {direct.iterations} | "
-           f"{t_direct:.1f} | {solve_s / max(direct.iterations, 1):.3f} | "
-           f"{direct.cost:.6f} ({direct.cost / main.cost - 1:+.2e}) |")
+    cg = direct.message.rsplit("Newton iterations, ", 1)[-1].split(" CG")[0]
+    previous = ""
+    if PREVIOUS:
+        old, t_old = _timed(problem, DirectOptions(tol=1e-7, method="lbfgs"))
+        previous = (f" | {t_old:.1f} ({old.iterations} it, {old.status}; J "
+                    f"{old.cost / direct.cost - 1:+.1e}) | {t_old / t_direct:.1f}")
+    row = (f"| 2D Gaussian core W (1, 0.7) | {n}x{n} x {k} | {main.cost:.6f} | "
+           f"{direct.cost:.6f} | {direct.cost / main.cost - 1:+.2e} | {dens:.2e} | {t_main:.1f} | "
+           f"{t_direct:.1f} ({direct.iterations} Newton, {cg} CG, {direct.status}){previous} |")
     print(row, flush=True)
     return row
 
@@ -171,21 +171,26 @@ def main() -> None:
     load = f"{os.getloadavg()[0]:.1f}"
     lines = ["# Direct solver bench", "",
              "Cross-check (chi = rho, sigma = 1, T = 1, U = x^2/2): main fixed-point solver vs "
-             "direct solver (truncated Newton in 1D, L-BFGS in 2D) on the same grid.",
+             "direct solver (Newton on densities and fluxes, tol 1e-9) on the same grid; "
+             "'ratio' is direct s / main s (the 1D target is 10)."
+             + (" 'previous' is the truncated Newton method of the density-only form "
+                "(method=truncated), timed in the same run, with its J relative to Newton's."
+                if PREVIOUS else ""),
              f"Machine load at start (1-minute load average, 2 cores shared): {load}.", "",
              "| case | cells x steps | J main | J direct | rel. gap | max density gap / peak "
-             "| exact J | main s | direct s |", "|---|---|---|---|---|---|---|---|---|"]
+             "| exact J | main s | direct s | ratio |" + (" previous s |" if PREVIOUS else ""),
+             "|---|---|---|---|---|---|---|---|---|---|" + ("---|" if PREVIOUS else "")]
     for n, k in ((48, 10), (96, 20), (192, 40)):
         lines += cross_check(n, k)
-    for n, k in ((16, 8), (24, 12)):
+    lines += ["", "2D (Gaussian core W (1, 0.7), tol 1e-7; targets: 64x64 x 8 under 60 s, "
+              "32x32 x 16 under 20 s on a quiet machine)"
+              + (", with L-BFGS (method=lbfgs, the earlier 2D minimiser) timed in the same run"
+                 if PREVIOUS else "") + ":", "",
+              "| case | grid x steps | J main | J direct | rel. gap | max density gap / peak "
+              "| main s | direct s |" + (" L-BFGS s | L-BFGS / Newton |" if PREVIOUS else ""),
+              "|---|---|---|---|---|---|---|---|" + ("---|---|" if PREVIOUS else "")]
+    for n, k in ((16, 8), (24, 12), (32, 8), (32, 16), (64, 8)):
         lines.append(cross_check_2d(n, k))
-    lines += ["", "2D timings (L-BFGS capped at the given iterations; the last column is J after "
-              "them, against the main solver's):", "",
-              "| grid x steps | main s | J main | direct it | direct s (with warm start) | "
-              "solve s / it | J direct |",
-              "|---|---|---|---|---|---|---|"]
-    for n, k, its in ((32, 8, 200), (64, 8, 50)):
-        lines.append(timing_2d(n, k, its))
     rows, (results, mass) = worked_example()
     lines += ["", "Worked example: tagged particles in a narrow channel (scenario of our own), "
               f"total mass {mass:.3f}, 64 cells, 16 steps, sigma = 1, U = 0.2 x^2/2.", "",

@@ -151,6 +151,9 @@ class BridgeResult:
     start: str = ""
     # what the stopping rule watched: {"quantity": name, "value": last value, "tolerance": tol}
     stopping: dict[str, Any] = field(default_factory=dict)
+    # open systems (direct solver with reservoirs): the steady profile, in the units and
+    # normalisation of ``density`` (grid.shape)
+    steady_density: np.ndarray | None = None
 
     @property
     def converged(self) -> bool:
@@ -162,7 +165,8 @@ class BridgeResult:
 
     @property
     def masses(self) -> np.ndarray:
-        """Cell masses, shape (K+1, *grid.shape); each slice sums to 1."""
+        """Cell masses, shape (K+1, *grid.shape); each slice sums to 1 (in a closed box: with
+        reservoirs the mass changes, see :mod:`mfbridge.solvers.direct`)."""
         return self.density * self.grid.cell_volume
 
     def marginal(self, axes: int | tuple[int, ...]) -> np.ndarray:
@@ -245,6 +249,10 @@ class BridgeResult:
         }
         if self.coupling is not None:
             data["coupling"] = (["cell_0", "cell_T"], self.coupling, {})
+        if self.steady_density is not None:
+            data["steady_density"] = (space, self.steady_density,
+                                      {"units": "1/length^d", "meaning": "steady profile "
+                                       "between the reservoirs"})
         kept = [a.density for a in self.alternatives if a.density is not None]
         if kept and len(kept) == len(self.alternatives):
             coords["bridge"] = np.arange(1, len(kept) + 1)
@@ -344,6 +352,7 @@ class BridgeResult:
             alternatives=alternatives,
             start=summary.get("start", ""),
             stopping=summary.get("stopping", {}),
+            steady_density=ds["steady_density"].values if "steady_density" in ds else None,
         )
 
 

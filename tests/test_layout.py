@@ -206,11 +206,15 @@ OLD_TARGETS = {
 }
 
 
+#: targets of modules written after the layout (no old name exists for them)
+NEW_TARGETS = {"mfbridge.model.reservoirs.Reservoirs", "mfbridge.model.reservoirs.closed_box"}
+
+
 def test_every_target_in_conf_has_its_old_name_listed() -> None:
     found = set()
     for path in CONF_DIR.rglob("*.yaml"):
         found |= set(re.findall(r"\b(mfbridge(?:\.\w+)+)[.:](\w+)", path.read_text()))
-    now = {f"{module}.{name}" for module, name in found}
+    now = {f"{module}.{name}" for module, name in found} - NEW_TARGETS
     assert now, "no mfbridge target found under conf/"
     assert now <= set(OLD_TARGETS.values()), sorted(now - set(OLD_TARGETS.values()))
 

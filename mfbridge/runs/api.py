@@ -172,8 +172,11 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
                                  "its own: solver.warm_start=displacement)")
             progress = None
             if direct_callback is not None:
-                # the direct solver's own rule: Newton in 1D unless method=lbfgs, L-BFGS in 2D
-                kind = "L-BFGS" if options.method == "lbfgs" or problem.grid.dim > 1 else "Newton"
+                # the direct solver's own rule: Newton (1D and 2D), truncated Newton in 1D,
+                # L-BFGS when asked or for method=truncated in 2D
+                lbfgs = options.method == "lbfgs" or (options.method == "truncated"
+                                                      and problem.grid.dim > 1)
+                kind = "L-BFGS" if lbfgs else "Newton"
                 report = direct_callback
                 count = {"last": 0, "offset": 0}
 

@@ -73,8 +73,8 @@ def _option_of(group: str, target: Any) -> str:
 
 def check_config(cfg: Any) -> None:
     """Refuse entries that would have no effect: top-level entries that nothing reads (e.g.
-    from ``+key=value``), and a mobility other than walkers with a solver that does not use
-    it. Raises :class:`InputError` with the right syntax."""
+    from ``+key=value``), and a mobility other than walkers, or open reservoirs, with a solver
+    that does not use them. Raises :class:`InputError` with the right syntax."""
     primary = _primary()
     known = set(default_choices()) | {k for k in primary if k != "defaults"} | {"hydra"}
     unknown = sorted(str(k) for k in cfg if str(k) not in known)
@@ -102,6 +102,16 @@ def check_config(cfg: Any) -> None:
             f"mobility={option} has no effect with solver={solver.get('method', solver_target)}"
             ", whose fixed-point loop assumes independent walkers (mobility χ = ρ); add "
             f"solver=direct to use it: mfbridge solver=direct mobility={option}"
+        )
+    reservoirs = cfg.get("reservoirs")
+    target = reservoirs.get("_target_") if hasattr(reservoirs, "get") else None
+    if (target is not None and not str(target).endswith(".closed_box")
+            and not str(solver_target).endswith(".DirectOptions")):
+        option = _option_of("reservoirs", target)
+        raise InputError(
+            f"reservoirs={option} has no effect with solver={solver.get('method', solver_target)}"
+            ", whose boxes are closed; open walls need the direct solver: mfbridge "
+            f"solver=direct reservoirs={option}"
         )
     _check_missing(cfg)
     endpoints = cfg.get("endpoints")
