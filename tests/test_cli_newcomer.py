@@ -40,7 +40,8 @@ def test_help(tmp_path):
     for word in ("check RUN_DIR", "collect SWEEP_DIR", "replay RUN_DIR", "README.md",
                  "length/√time", "mfbridge --version"):
         assert word in text
-    for group in ("grid", "confinement", "interaction", "endpoints", "mobility", "solver"):
+    for group in ("grid", "confinement", "interaction", "endpoints", "mobility", "reservoirs",
+                  "solver"):
         options = sorted(p.stem for p in (ROOT / "conf" / group).glob("*.yaml"))
         assert f"\n  {group}\n" in text
         for option in options:
@@ -84,6 +85,8 @@ def test_mobility_option_reaches_the_direct_solver():
 
 @pytest.mark.parametrize(("overrides", "words"), [
     (["mobility=exclusion"], ["no effect with solver=optimal", "solver=direct mobility=exclusion"]),
+    (["reservoirs=open_chain"], ["no effect with solver=optimal",
+                                 "solver=direct reservoirs=open_chain"]),
     (["+colour=red"], ["colour", "not read by mfbridge"]),
     (["interaction=torch"], ["interaction.fn", "required"]),
 ])

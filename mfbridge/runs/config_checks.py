@@ -91,28 +91,24 @@ def check_config(cfg: Any) -> None:
     progress = cfg.get("progress", True)
     if not isinstance(progress, bool):
         raise InputError(f"progress must be true or false, got {progress!r}")
-    mobility = cfg.get("mobility")
-    target = mobility.get("_target_") if hasattr(mobility, "get") else None
     solver = cfg.get("solver")
     solver_target = solver.get("_target_") if hasattr(solver, "get") else None
-    if (target is not None and not str(target).endswith(".Walkers")
-            and not str(solver_target).endswith(".DirectOptions")):
-        option = _option_of("mobility", target)
-        raise InputError(
-            f"mobility={option} has no effect with solver={solver.get('method', solver_target)}"
-            ", whose fixed-point loop assumes independent walkers (mobility χ = ρ); add "
-            f"solver=direct to use it: mfbridge solver=direct mobility={option}"
-        )
-    reservoirs = cfg.get("reservoirs")
-    target = reservoirs.get("_target_") if hasattr(reservoirs, "get") else None
-    if (target is not None and not str(target).endswith(".closed_box")
-            and not str(solver_target).endswith(".DirectOptions")):
-        option = _option_of("reservoirs", target)
-        raise InputError(
-            f"reservoirs={option} has no effect with solver={solver.get('method', solver_target)}"
-            ", whose boxes are closed; open walls need the direct solver: mfbridge "
-            f"solver=direct reservoirs={option}"
-        )
+    # groups read by the direct solver only: (group, target of the option that changes nothing,
+    # why the other solvers ignore it)
+    for group, harmless, why in (
+            ("mobility", ".Walkers", "whose fixed-point loop assumes independent walkers "
+                                     "(mobility χ = ρ); add solver=direct to use it"),
+            ("reservoirs", ".closed_box", "whose boxes are closed; open walls need the direct "
+                                          "solver")):
+        chosen = cfg.get(group)
+        target = chosen.get("_target_") if hasattr(chosen, "get") else None
+        if (target is not None and not str(target).endswith(harmless)
+                and not str(solver_target).endswith(".DirectOptions")):
+            option = _option_of(group, target)
+            raise InputError(
+                f"{group}={option} has no effect with solver="
+                f"{solver.get('method', solver_target)}, {why}: mfbridge solver=direct "
+                f"{group}={option}")
     _check_missing(cfg)
     endpoints = cfg.get("endpoints")
     if hasattr(endpoints, "get"):

@@ -316,30 +316,43 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
                                 for w in ("control", "bridge", "drift"))
         velocity = [((j - b) / rf).numpy() for j, b, _, rf in terms]
     rho = rho_t.numpy()
+    masses = rho.reshape(len(rho), -1).sum(axis=1) * vol / mass
+    stopping = stopping_record(opt.history, options, use_lbfgs, opt.grad_norm)
+    return _bridge_result(
+        problem, options, act, rho, _centre_control(velocity, grid, k_steps),
+        (cost, kinetic, drift), status=opt.status, message=opt.message,
+        iterations=opt.iterations, history=opt.history, stopping=stopping,
+        marginal_error=float(np.abs(masses - 1.0).max()),
+        timings={"setup": setup, "solve": solve_seconds, "total": time.perf_counter() - start})
+
+
+def _bridge_result(problem: BridgeProblem, options: DirectOptions, act: DirectAction,
+                   rho: np.ndarray, control: np.ndarray, parts: tuple[float, float, float], *,
+                   status: str, message: str, iterations: int,
+                   history: list[dict[str, float]], stopping: dict[str, Any],
+                   marginal_error: float, timings: dict[str, float],
+                   model: dict[str, Any] | None = None,
+                   steady_density: np.ndarray | None = None) -> BridgeResult:
+    """The :class:`BridgeResult` of a direct solve: densities ``rho`` (occupation, (K+1,
+    *shape)), cell-centred ``control`` (K+1, *shape, d), J and its kinetic and drift parts;
+    free energies and moments from ``rho``; a :class:`ConvergenceWarning` unless converged.
+    ``model`` adds entries to the description of the model (e.g. the reservoirs)."""
+    grid, mob, mass = problem.grid, options.mobility, options.total_mass
+    vol = grid.cell_volume
+    cost, kinetic, drift = parts
     p = rho * vol / mass
     fe = act.free_energy(rho)
-    delta_f = float(fe[-1] - fe[0]) / problem.noise**2
     mean, cov = observables.moments(p, grid)
-    masses = p.reshape(len(p), -1).sum(axis=1)
-    marginal_error = float(np.abs(masses - 1.0).max())
-    status, message = opt.status, opt.message
-    stopping = stopping_record(opt.history, options, use_lbfgs, opt.grad_norm)
     if status == "converged":
         message = f"converged: {message}; J = {cost:.8g}"
     else:
-        warnings.warn(ConvergenceWarning(f"direct solver {status}: {message}"), stacklevel=2)
+        warnings.warn(ConvergenceWarning(f"direct solver {status}: {message}"), stacklevel=4)
     nan = np.full(rho.shape, np.nan)
-    model = {
-        "confinement": _describe(problem.confinement),
-        "interaction": _describe(problem.interaction),
-        "mobility": mob.describe(),
-        "total_mass": mass,
-    }
     return BridgeResult(
         grid=grid,
         times=problem.times,
         density=p / vol,
-        control=_centre_control(velocity, grid, k_steps),
+        control=control,
         log_forward=nan,
         log_backward=nan.copy(),
         correction=nan.copy(),
@@ -350,19 +363,22 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
         cost=cost,
         cost_kinetic=kinetic,
         cost_drift=drift,
-        cost_free_energy=delta_f,
+        cost_free_energy=float(fe[-1] - fe[0]) / problem.noise**2,
         noise=problem.noise,
         method="direct",
         route=mob.name,
         status=status,
         message=message,
-        iterations=opt.iterations,
+        iterations=iterations,
         residual=stopping["value"],
         marginal_error=marginal_error,
-        history=opt.history,
-        timings={"setup": setup, "solve": solve_seconds, "total": time.perf_counter() - start},
-        model=model,
+        history=history,
+        timings=timings,
+        model={"confinement": _describe(problem.confinement),
+               "interaction": _describe(problem.interaction),
+               "mobility": mob.describe(), "total_mass": mass, **(model or {})},
         stopping=stopping,
+        steady_density=steady_density,
     )
 
 
@@ -498,62 +514,23 @@ def _solve_flux(problem: BridgeProblem, options: DirectOptions,
                             "decrement² / 2|J|) at the last barrier weight",
                 "value": float(last), "tolerance": options.tol, "largest_gradient": grad_norm}
     solve_seconds = time.perf_counter() - start - setup
-    cost, kinetic, drift = fa.parts(torch.from_numpy(rho_int), torch.from_numpy(flux))
+    parts = fa.parts(torch.from_numpy(rho_int), torch.from_numpy(flux))
     velocity = fa.velocity(rho_int, flux)
     rho = fa.full(torch.from_numpy(rho_int)).numpy().reshape(k_steps + 1, *grid.shape)
-    p = rho * vol / mass
-    fe = act.free_energy(rho)
-    delta_f = float(fe[-1] - fe[0]) / problem.noise**2
-    mean, cov = observables.moments(p, grid)
     masses = rho.reshape(k_steps + 1, -1).sum(axis=1) * vol
     inflow = sum(fa.wall_flux(flux).values(), np.zeros(k_steps))
     balance = np.abs(np.diff(masses) - problem.dt * inflow) / masses.max()
-    marginal_error = float(balance.max(initial=0.0))
-    if status == "converged":
-        message = f"converged: {message}; J = {cost:.8g}"
-    else:
-        warnings.warn(ConvergenceWarning(f"direct solver {status}: {message}"), stacklevel=3)
-    model = {
-        "confinement": _describe(problem.confinement),
-        "interaction": _describe(problem.interaction),
-        "mobility": mob.describe(),
-        "total_mass": mass,
-    }
+    model = None
     if reservoirs is not None and steady is not None:
-        model["reservoirs"] = {**reservoirs.describe(), "steady_current": steady.current,
-                               "steady_mass": float(steady.density.sum() * vol),
-                               "mass": [float(masses[0]), float(masses[-1])]}
-    nan = np.full(rho.shape, np.nan)
-    return BridgeResult(
-        grid=grid,
-        times=problem.times,
-        density=p / vol,
-        control=_centre_flux_control(velocity, layout, grid, k_steps),
-        log_forward=nan,
-        log_backward=nan.copy(),
-        correction=nan.copy(),
-        mean=mean,
-        cov=cov,
-        free_energy=fe,
-        entropy=observables.entropy(rho * vol, grid),
-        cost=cost,
-        cost_kinetic=kinetic,
-        cost_drift=drift,
-        cost_free_energy=delta_f,
-        noise=problem.noise,
-        method="direct",
-        route=mob.name,
-        status=status,
-        message=message,
-        iterations=iterations,
-        residual=stopping["value"],
-        marginal_error=marginal_error,
-        history=history,
+        model = {"reservoirs": {**reservoirs.describe(), "steady_current": steady.current,
+                                "steady_mass": float(steady.density.sum() * vol),
+                                "mass": [float(masses[0]), float(masses[-1])]}}
+    return _bridge_result(
+        problem, options, act, rho, _centre_flux_control(velocity, layout, grid, k_steps),
+        parts, status=status, message=message, iterations=iterations, history=history,
+        stopping=stopping, marginal_error=float(balance.max(initial=0.0)),
         timings={"setup": setup, "solve": solve_seconds, "total": time.perf_counter() - start},
-        model=model,
-        stopping=stopping,
-        steady_density=None if steady is None else steady.density / mass,
-    )
+        model=model, steady_density=None if steady is None else steady.density / mass)
 
 
 def _newton_start(problem: BridgeProblem, options: DirectOptions) -> np.ndarray:
