@@ -75,7 +75,7 @@ def step_tail(tol: float, steps: int) -> float:
     return min(1e-6, max(UNIFORMISATION_TAIL, 1e-2 * tol / (3 * steps)))
 
 
-def _uniformisation_is_cheaper(terms: int, cells: int) -> bool:
+def uniformisation_is_cheaper(terms: int, cells: int) -> bool:
     """Cost model of one axis factor on ``cells`` cells, seconds measured on the development
     machine (one BLAS thread): a uniformisation term (a real tridiagonal product and an update,
     seven array operations) ~9 µs + 5 ns per cell; a contour application (ten complex solves
@@ -152,7 +152,7 @@ class AxisStep:
         self._lam = float(exit_rate.max())
         self._terms = poisson_terms(self._lam, tail)
         self.uniformised = method == "uniformisation" or (
-            method == "auto" and _uniformisation_is_cheaper(self._terms, upp.size))
+            method == "auto" and uniformisation_is_cheaper(self._terms, upp.size))
         self._uniform: tuple[np.ndarray, ...] | None = None
 
     def _factorise(self) -> list[np.ndarray]:

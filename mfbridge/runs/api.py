@@ -19,7 +19,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-from mfbridge.errors import InputError, RunStatusWarning
+from mfbridge.errors import InputError, RunStatusWarning, is_real_number
 from mfbridge.model.grid import Grid
 from mfbridge.model.potentials import (
     Confinement,
@@ -117,8 +117,10 @@ def _axis_names(endpoints: dict[str, Any]) -> list[str] | None:
     return None
 
 
-def _problem_and_axes(cfg: Any) -> tuple[BridgeProblem, list[str] | None]:
-    """The problem of ``cfg`` and the names of its space axes (data-file columns) if any."""
+def _problem_and_axes(cfg: Any, grid: Grid | None = None
+                      ) -> tuple[BridgeProblem, list[str] | None]:
+    """The problem of ``cfg`` (on ``grid`` when it is built already) and the names of its space
+    axes (data-file columns) if any."""
     for key in (*GROUPS, "noise", "horizon", "steps"):
         if key not in cfg:
             raise InputError(f"the configuration has no {key!r} entry")
@@ -129,7 +131,7 @@ def _problem_and_axes(cfg: Any) -> tuple[BridgeProblem, list[str] | None]:
 
     check_same_dimension(endpoints["initial"], endpoints["final"])
     problem = BridgeProblem(
-        grid=_build(cfg, "grid"),
+        grid=_build(cfg, "grid") if grid is None else grid,
         initial=endpoints["initial"],
         final=endpoints["final"],
         noise=noise_from_config(cfg.noise, cfg.get("diffusion")),
@@ -139,6 +141,29 @@ def _problem_and_axes(cfg: Any) -> tuple[BridgeProblem, list[str] | None]:
         interaction=_build(cfg, "interaction"),
     )
     return problem, _axis_names(endpoints)
+
+
+def _check_memory(cfg: Any, grid: Grid, options: SolverOptions) -> None:
+    """Estimate the solve's peak memory from the sizes alone and refuse it, before anything of
+    size n x K is allocated, when the machine cannot give it (:mod:`mfbridge.runs.resources`).
+    Invalid numbers are left to the problem's own checks."""
+    from mfbridge.model.potentials import NoInteraction
+    from mfbridge.runs.resources import check_memory
+    from mfbridge.solvers.memory import estimate
+
+    steps, horizon = cfg.steps, cfg.horizon
+    noise = noise_from_config(cfg.noise, cfg.get("diffusion"))
+    if not (isinstance(steps, int) and not isinstance(steps, bool) and steps >= 1
+            and is_real_number(horizon) and horizon > 0 and is_real_number(noise) and noise > 0):
+        return
+    route = options.route
+    if route == "auto":
+        route = "dense" if grid.size <= options.dense_max_cells else "operator"
+    interacting = not isinstance(_build(cfg, "interaction"), NoInteraction)
+    need = estimate(grid.shape, grid.spacing, steps, float(horizon), float(noise), route=route,
+                    interacting=interacting, method=options.method, anderson=options.anderson,
+                    coupling=options.coupling, starts=options.starts)
+    check_memory(need, coupling=options.coupling)
 
 
 def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
@@ -161,8 +186,14 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
                          f"{type(cfg).__name__} {cfg!r}; to solve a BridgeProblem object use "
                          "mfbridge.solve_bridge(problem, options)")
     check_config(cfg)
-    problem, axes = _problem_and_axes(cfg)
+    for key in (*GROUPS, "noise", "horizon", "steps"):
+        if key not in cfg:
+            raise InputError(f"the configuration has no {key!r} entry")
+    grid = _build(cfg, "grid")
     options = _build(cfg, "solver")
+    if isinstance(options, SolverOptions) and isinstance(grid, Grid):
+        _check_memory(cfg, grid, options)
+    problem, axes = _problem_and_axes(cfg, grid)
     if type(options).__name__ == "DirectOptions":
         from mfbridge.solvers.direct import DirectOptions, solve_direct
 
