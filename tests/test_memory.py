@@ -66,6 +66,20 @@ def test_estimate_is_logged_on_every_run(tmp_path: Path, caplog: pytest.LogCaptu
     assert len(lines) == 1 and "operator route" in lines[0] and "available" in lines[0]
 
 
+def test_direct_solver_logs_that_it_is_not_estimated(monkeypatch: pytest.MonkeyPatch,
+                                                      caplog: pytest.LogCaptureFixture) -> None:
+    from mfbridge.solvers import direct
+
+    def stop(*args: object) -> None:
+        raise RuntimeError("stopped before solving")
+
+    monkeypatch.setattr(direct, "solve_direct", stop)
+    with caplog.at_level(logging.INFO, logger="mfbridge"), pytest.raises(RuntimeError):
+        mfbridge.solve(mfbridge.compose(["solver=direct", "grid.shape=32", "steps=8"]))
+    assert any("memory estimate: none for the direct solver" in r.getMessage()
+               for r in caplog.records)
+
+
 def test_address_space_limit_counts_as_available() -> None:
     """Under `prlimit --as` or `ulimit -v`, the room left below the limit is what this process
     can get (the soft limit is lowered for one call and restored; nothing is allocated)."""

@@ -117,13 +117,17 @@ def _axis_names(endpoints: dict[str, Any]) -> list[str] | None:
     return None
 
 
+def _check_entries(cfg: Any) -> None:
+    for key in (*GROUPS, "noise", "horizon", "steps"):
+        if key not in cfg:
+            raise InputError(f"the configuration has no {key!r} entry")
+
+
 def _problem_and_axes(cfg: Any, grid: Grid | None = None
                       ) -> tuple[BridgeProblem, list[str] | None]:
     """The problem of ``cfg`` (on ``grid`` when it is built already) and the names of its space
     axes (data-file columns) if any."""
-    for key in (*GROUPS, "noise", "horizon", "steps"):
-        if key not in cfg:
-            raise InputError(f"the configuration has no {key!r} entry")
+    _check_entries(cfg)
     endpoints = _build(cfg, "endpoints")
     if set(endpoints) != {"initial", "final"}:
         raise InputError("the endpoints group must define exactly 'initial' and 'final'")
@@ -186,13 +190,16 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
                          f"{type(cfg).__name__} {cfg!r}; to solve a BridgeProblem object use "
                          "mfbridge.solve_bridge(problem, options)")
     check_config(cfg)
-    for key in (*GROUPS, "noise", "horizon", "steps"):
-        if key not in cfg:
-            raise InputError(f"the configuration has no {key!r} entry")
+    _check_entries(cfg)
     grid = _build(cfg, "grid")
     options = _build(cfg, "solver")
     if isinstance(options, SolverOptions) and isinstance(grid, Grid):
         _check_memory(cfg, grid, options)
+    else:
+        from mfbridge.runs.resources import log_unestimated
+
+        log_unestimated("the direct solver" if type(options).__name__ == "DirectOptions"
+                        else f"a grid of type {type(grid).__name__}")
     problem, axes = _problem_and_axes(cfg, grid)
     if type(options).__name__ == "DirectOptions":
         from mfbridge.solvers.direct import DirectOptions, solve_direct

@@ -72,6 +72,14 @@ def available_memory() -> tuple[int | None, str]:
     return min(found) if found else (None, "unknown")
 
 
+def log_unestimated(what: str) -> None:
+    """Log that the memory of a run with ``what`` is not estimated, and what is available."""
+    have, source = available_memory()
+    log.info("memory estimate: none for %s (only the fixed-point solver on a mfbridge Grid is "
+             "modelled); available %s (%s)", what,
+             "unknown" if have is None else format_bytes(have), source)
+
+
 def check_memory(need: MemoryEstimate, coupling: bool = False) -> None:
     """Log ``need`` and the memory available; raise :class:`MemoryRefusal` when it does not
     fit."""
