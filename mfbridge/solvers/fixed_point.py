@@ -48,6 +48,7 @@ from mfbridge.errors import ConvergenceWarning, InputError, PrecisionWarning, un
 from mfbridge.model.problem import BridgeProblem
 from mfbridge.numerics import entropic, observables
 from mfbridge.numerics.anderson import AndersonMixer
+from mfbridge.numerics.gaussian_step import MIN_WIDTH, width_in_cells
 from mfbridge.numerics.propagator import UNIFORMISATION_TAIL, StepOperator, step_tail
 from mfbridge.numerics.reference import (
     EdgeRates,
@@ -57,7 +58,7 @@ from mfbridge.numerics.reference import (
     faces,
 )
 from mfbridge.result import BridgeResult
-from mfbridge.solvers import multistart
+from mfbridge.solvers import multistart, small_noise
 from mfbridge.solvers.stopping import MarginalStall
 
 METHODS = ("optimal", "frozen")
@@ -81,6 +82,11 @@ INNER_FRACTION = 1e-4
 INNER_FRACTION_MIN = 1e-6
 STAGNATION = 4
 MAX_STARTS = 64
+SINKHORN_ANDERSON = 5
+# relative rounding of V with the Gaussian steps: on the sigma = 0.05 reference case (640 cells,
+# 32 steps) the residual stagnated between 1.1e-12 and 3.5e-11 of T max_k sum p|V| (tol 1e-9
+# was never met: 1067 outer iterations, then continuations)
+ROUNDOFF = 1e-10
 
 
 @dataclass(frozen=True)
@@ -114,7 +120,12 @@ class SolverOptions:
     * ``starts``: run the outer loop from this many initial guesses, the usual one and
       ``starts - 1`` tilted ones (:mod:`mfbridge.solvers.multistart`); the cheapest converged
       bridge is returned, the other distinct ones are in ``result.alternatives`` and a
-      :class:`~mfbridge.errors.MultipleBridgesWarning` names their costs (1: one start).
+      :class:`~mfbridge.errors.MultipleBridgesWarning` names their costs (1: one start);
+    * ``kernel``: the reference's time step: ``"chain"`` (the Scharfetter–Gummel jump chain,
+      exact exponential per step), ``"gaussian"`` (the split heat kernel, a sampled Gaussian
+      per step, always in the log domain: :mod:`mfbridge.solvers.small_noise`), or ``"auto"``
+      (the chain, unless its estimated cell Péclet number is above 2 and σ√Δt is at least 0.7
+      cell: small noise).
     """
 
     method: str = "optimal"
@@ -131,10 +142,13 @@ class SolverOptions:
     noise_continuation: int = 4
     propagation: str = "auto"
     starts: int = 1
+    kernel: str = "auto"
 
     def __post_init__(self) -> None:
         if self.method not in METHODS:
             raise unknown_name("method", self.method, METHODS)
+        if self.kernel not in small_noise.KERNELS:
+            raise unknown_name("kernel", self.kernel, small_noise.KERNELS)
         if self.route not in ROUTES:
             raise unknown_name("route", self.route, ROUTES)
         if self.propagation not in PROPAGATIONS:
@@ -188,10 +202,13 @@ class _Bridge:
     """Discretised problem: grid, potentials on the grid, time weights."""
 
     def __init__(self, problem: BridgeProblem, scale: float = 1.0,
-                 log_domain: bool = False) -> None:
+                 log_domain: bool = False, kernel: str = "chain") -> None:
         self.problem = problem
         self.scale = scale  # the interaction used is scale * W (continuation)
-        self.log_domain = log_domain
+        self.kernel = kernel  # "chain" or "gaussian" (small_noise.KERNELS without "auto")
+        self._phi_mid = np.empty(0)  # Φ at the step midpoints of the last Gaussian reference
+        # the Gaussian steps are applied in the log domain only
+        self.log_domain = log_domain or kernel == "gaussian"
         grid = problem.grid
         self.grid = grid
         self.shape = grid.shape
@@ -220,6 +237,11 @@ class _Bridge:
                   tail: float = UNIFORMISATION_TAIL) -> entropic.FrozenReference:
         phi = self.potential(p_bar)
         phi_mid = 0.5 * (phi[:-1] + phi[1:])
+        log_weights = -self.expand(self.omega) * v_bar
+        if self.kernel == "gaussian":
+            self._phi_mid = phi_mid  # V is the derivative at the reference of this iteration
+            steps = small_noise.gaussian_steps(phi_mid, self.grid, self.problem.noise, self.dt)
+            return entropic.FrozenReference(steps, log_weights, True)  # type: ignore[arg-type]
         rates = edge_rates(phi_mid, self.grid, self.problem.noise)
         steps = []
         for k in range(self.k_steps):
@@ -227,7 +249,7 @@ class _Bridge:
                            tuple(r[k] for r in rates.backward))
             # in 2D/3D alternate the order of the axis factors (Strang over pairs of steps)
             steps.append(StepOperator(rk, self.dt, self.shape, reverse=bool(k % 2), tail=tail))
-        return entropic.FrozenReference(steps, -self.expand(self.omega) * v_bar, self.log_domain)
+        return entropic.FrozenReference(steps, log_weights, self.log_domain)
 
     def solved(self, sol: entropic.EntropicSolution, ref: entropic.FrozenReference,
                v_bar: np.ndarray) -> _Solved:
@@ -238,9 +260,12 @@ class _Bridge:
         log_f = sol.log_forward + ref.log_weights - log_half
         return _Solved(sol, p, log_f, log_h, self.potential(p))
 
-    def correction(self, s: _Solved) -> np.ndarray:
+    def correction(self, s: _Solved, ref: entropic.FrozenReference) -> np.ndarray:
         """The potential V (K+1, *shape) from the flow, potentials and Φ of one solve."""
         noise = self.problem.noise
+        if self.kernel == "gaussian":
+            return small_noise.gaussian_correction(s.p, self._phi_mid, ref, self.grid, noise,
+                                                   self.dt, self.pair, self.scale, self.omega)
         beta = 2.0 / noise**2
         c = np.zeros_like(s.p)
         for a in range(self.grid.dim):
@@ -350,7 +375,8 @@ def _attempt(problem: BridgeProblem, scale: float, options: SolverOptions, route
     """One outer iteration from ``start`` with the interaction ``scale`` × W; with
     ``propagation="auto"`` it moves to log-domain steps when the rational ones underflow where an
     endpoint has mass or the Sinkhorn iteration stalls."""
-    bridge = _Bridge(problem, scale=scale, log_domain=log_domain or options.propagation == "log")
+    bridge = _Bridge(problem, scale=scale, log_domain=log_domain or options.propagation == "log",
+                     kernel=options.kernel)
     outcome = None
     try:
         outcome = _iterate(bridge, options, route, start, history, callback)
@@ -367,7 +393,7 @@ def _attempt(problem: BridgeProblem, scale: float, options: SolverOptions, route
             "the endpoints need values below double precision of the reference kernel; "
             "switching to exact log-domain propagation (slower; set solver.propagation=log to "
             "start there)"), stacklevel=4)
-        bridge = _Bridge(problem, scale=scale, log_domain=True)
+        bridge = _Bridge(problem, scale=scale, log_domain=True, kernel=options.kernel)
         start = outcome.start() if outcome is not None else start
         outcome = _iterate(bridge, options, route, start, history, callback)
     if outcome.status == "stalled":
@@ -415,6 +441,12 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
             f"the static coupling of {grid.size} cells needs an n x n kernel; it is available up "
             f"to {COUPLING_MAX_CELLS} cells (use route=operator without coupling)"
         )
+    kernel_note = ""
+    if options.kernel == "auto":
+        found = small_noise.resolution(problem)
+        options = dataclasses.replace(options, kernel=found.kernel)
+        if found.kernel == "gaussian":
+            kernel_note = f" with Gaussian steps ({found.describe()})"
     if warm_start is None:
         start = _cold_start(problem)
     else:
@@ -426,7 +458,7 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
                        solution=True)
     history: list[dict[str, float]] = []
     outcome = _attempt(problem, 1.0, options, route, start, history, callback)
-    note = _LOG_NOTE if outcome.log_domain else ""
+    note = _LOG_NOTE if outcome.log_domain and options.kernel == "chain" else kernel_note
     if not outcome.stop and outcome.status != "converged" and options.noise_continuation > 0:
         outcome = _noise_continuation(problem, options, route, history, callback)
         note = (f" (by continuation in the noise from {outcome.noise_start:.3g} over "
@@ -454,6 +486,10 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
     if status == "converged":
         message = (f"converged in {it} outer iterations{note}: residual {residual:.2e}, "
                    f"marginal error {solved.sol.marginal_error:.2e}")
+        floor = _roundoff_floor(bridge, solved.p, outcome.v_bar)
+        if floor > options.tol:
+            message += (f" (the tolerance is below the rounding of V here: stopped under "
+                        f"{floor:.1e}, {ROUNDOFF:g} of T max_k sum p|V|)")
     elif outcome.stop:
         message = f"not converged: stopped after {it} outer iterations{note}: {outcome.stop}"
         warnings.warn(ConvergenceWarning(message), stacklevel=3)
@@ -462,7 +498,10 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
                    f"{residual:.2e} (tolerance {options.tol:.1e}), marginal error "
                    f"{solved.sol.marginal_error:.2e}")
         peclet = _cell_peclet(bridge, solved)
-        if peclet > PECLET_HINT:
+        width = min(width_in_cells(problem.noise, problem.dt, grid.spacing))
+        if options.kernel == "gaussian" and width < MIN_WIDTH:
+            message += "; " + small_noise.gaussian_hint(width)
+        elif options.kernel == "chain" and peclet > PECLET_HINT:
             message += (f"; the largest cell Péclet number is {peclet:.3g}: the grid is coarse "
                         f"for this noise (the outer iteration needs |u|h/D of order 1 or below); "
                         f"refine the grid")
@@ -487,6 +526,9 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
     problem = bridge.problem
     grid = problem.grid
     inner = entropic.solve_dense if route == "dense" else entropic.solve_operator
+    # Anderson-mixed Sinkhorn with the Gaussian steps (small noise: plain Sinkhorn is slow)
+    accelerate = ({"anderson": SINKHORN_ANDERSON}
+                  if route != "dense" and bridge.kernel == "gaussian" else {})
     mu, nu = problem.initial, problem.final
     interacting = not bridge.pair.is_zero
     optimal = options.method == "optimal" and interacting
@@ -501,10 +543,11 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
     for _ in range(options.max_iter):
         t0 = time.perf_counter()
         ref = bridge.reference(p_bar, v_bar, step_tail(inner_tol, bridge.k_steps))
-        sol = inner(ref, mu, nu, log_b, tol=inner_tol, max_iter=options.sinkhorn_max_iter)
+        sol = inner(ref, mu, nu, log_b, tol=inner_tol, max_iter=options.sinkhorn_max_iter,
+                    **accelerate)
         log_b = sol.log_b
         solved = bridge.solved(sol, ref, v_bar)
-        v_new = bridge.correction(solved) if optimal else np.zeros_like(v_bar)
+        v_new = bridge.correction(solved, ref) if optimal else np.zeros_like(v_bar)
         residual = (
             _residual(solved.p, p_bar, v_new, v_bar, problem.horizon, grid.dim)
             if interacting else 0.0
@@ -525,7 +568,8 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
                 and not bridge.log_domain):
             status = "stalled"  # the entropic problem cannot be solved to working precision
             break
-        if residual <= options.tol and sol.marginal_error <= options.tol:
+        floor = _roundoff_floor(bridge, solved.p, v_new)
+        if residual <= max(options.tol, floor) and sol.marginal_error <= options.tol:
             status = "converged"
             break
         stop = stall.check(residual, sol.marginal_error, inner_tol)
@@ -555,6 +599,17 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
     return _Outcome(status, solved, ref, v_bar, residual, bridge, stop=stop)
 
 
+def _roundoff_floor(bridge: _Bridge, p: np.ndarray, v: np.ndarray) -> float:
+    """The smallest residual the Gaussian steps can resolve (0 for the chain): V is O(1/σ²)
+    and computed from log-potentials of size O(1/σ²), whose rounding puts a floor under
+    :math:`T\\max_k\\sum_i p_{k,i}|V_{k,i} - \\bar V_{k,i}|` at ``ROUNDOFF`` times
+    :math:`T\\max_k\\sum_i p_{k,i}|V_{k,i}|`."""
+    if bridge.kernel != "gaussian":
+        return 0.0
+    axes = tuple(range(1, bridge.grid.dim + 1))
+    return ROUNDOFF * bridge.problem.horizon * float((p * np.abs(v)).sum(axis=axes).max())
+
+
 def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: np.ndarray,
             options: SolverOptions, route: str, status: str, message: str, iterations: int,
             residual: float, history: list[dict[str, float]], timings: dict[str, float]
@@ -568,14 +623,22 @@ def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: n
     # path-space KL of the chain agrees to O(h^2) only while the cell Peclet number |u| h / D is
     # small; this form stays accurate at small noise, where the chain's jump statistics are not
     # Gaussian in the far tail.
-    bridge_flux, reference_flux = _net_fluxes(bridge, s)
-    control_flux = tuple(b - r for b, r in zip(bridge_flux, reference_flux, strict=True))
-    # J and the two flux parts by one quadrature (observables.flux_action): with j the bridge's
-    # flux and r = -rho grad(dF/drho) the reference's, |j - r|^2 = |j|^2 - 2 j.r + |r|^2 and the
-    # cross term integrates to (F(nu) - F(mu))/sigma^2 in the continuum (continuity equation,
-    # no-flux walls), so J = kinetic + drift + free-energy change up to discretisation error.
-    cost, kinetic, drift = (observables.flux_action(flux, s.p, grid, bridge.omega, noise)
-                            for flux in (control_flux, bridge_flux, reference_flux))
+    if bridge.kernel == "gaussian":
+        # J of the flow: the chain's own rate function, KL(P | R[rho]); the flux parts at the
+        # nodes from the bridge velocity (small_noise docstring)
+        cost = entropic.path_relative_entropy(sol, ref, problem.initial, problem.final)
+        kinetic, drift = small_noise.node_flux_parts(grid, noise, bridge.omega, s.p, s.log_h,
+                                                     s.phi)
+    else:
+        bridge_flux, reference_flux = _net_fluxes(bridge, s)
+        control_flux = tuple(b - r for b, r in zip(bridge_flux, reference_flux, strict=True))
+        # J and the two flux parts by one quadrature (observables.flux_action): with j the
+        # bridge's flux and r = -rho grad(dF/drho) the reference's, |j - r|^2 = |j|^2 - 2 j.r +
+        # |r|^2 and the cross term integrates to (F(nu) - F(mu))/sigma^2 in the continuum
+        # (continuity equation, no-flux walls), so J = kinetic + drift + free-energy change up
+        # to discretisation error.
+        cost, kinetic, drift = (observables.flux_action(flux, s.p, grid, bridge.omega, noise)
+                                for flux in (control_flux, bridge_flux, reference_flux))
     mean, cov = observables.moments(s.p, grid)
     fe = observables.free_energy(s.p, grid, noise, bridge.confinement, bridge.pair)
     delta_f = float(fe[-1] - fe[0]) / noise**2
