@@ -13,7 +13,7 @@ from mfbridge.model.potentials import GaussianCore, Harmonic
 from mfbridge.model.problem import BridgeProblem
 from mfbridge.numerics import observables
 from mfbridge.numerics.reference import PairField
-from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
+from mfbridge.solvers.fixed_point import solve_bridge
 
 
 def quantile_function(p: np.ndarray, grid: Grid, u: np.ndarray) -> np.ndarray:
@@ -49,15 +49,11 @@ def displacement_distance(result, grid: Grid, mu: np.ndarray, nu: np.ndarray) ->
 
 @pytest.fixture(scope="module")
 def small_noise_runs():
-    # the jump chain at every noise (kernel=auto would take the Gaussian steps at 0.15, where
-    # the estimated cell Péclet number is 2.5: same cost to 5e-4 relative, and a flow closer to
-    # the displacement interpolation, 0.0025 against the chain's 0.0043, whose cells add
-    # spread; the Gaussian steps' limit is checked in tests/test_small_noise.py)
     grid, mu, nu = small_noise_endpoints()
     runs = {}
     for sigma in (0.4, 0.3, 0.2, 0.15):
         result = solve_bridge(BridgeProblem(grid=grid, initial=mu, final=nu, noise=sigma,
-                                            horizon=1.0, steps=100), SolverOptions(kernel="chain"))
+                                            horizon=1.0, steps=100))
         assert result.converged, result.message
         runs[sigma] = result
     return grid, mu, nu, runs

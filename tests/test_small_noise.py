@@ -14,10 +14,9 @@ from mfbridge.model.endpoints import Gaussian, GaussianMixture
 from mfbridge.model.grid import Grid
 from mfbridge.model.potentials import Harmonic, HarmonicInteraction
 from mfbridge.model.problem import BridgeProblem
-from mfbridge.numerics import entropic
-from mfbridge.solvers.fixed_point import SolverOptions, _Bridge, solve_bridge
+from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
 from mfbridge.solvers.linear_quadratic import lq_bridge
-from mfbridge.solvers.small_noise import gaussian_steps, resolution
+from mfbridge.solvers.small_noise import mean_response, resolution
 
 
 def reference_case(noise: float, cells: int, steps: int) -> BridgeProblem:
@@ -31,27 +30,6 @@ def reference_case(noise: float, cells: int, steps: int) -> BridgeProblem:
 def exact_cost(noise: float) -> float:
     return lq_bridge(stiffness=1.0, strength=1.5, noise=noise, horizon=1.0, mean0=-1.0,
                      cov0=0.16, mean1=1.2, cov1=0.49, times=2).cost
-
-
-def mean_response(problem: BridgeProblem, kernel: str, eps: float) -> float:
-    """d E[X_{T/2}] / d eps for the bridge weighted by exp(-eps int X_t dt) (W = 0), by central
-    differences of two solves in the log domain."""
-    bridge = _Bridge(problem, log_domain=True)
-    grid, k_steps = problem.grid, problem.steps
-    x = grid.axes[0]
-    means = []
-    for sign in (-1.0, 1.0):
-        v = np.broadcast_to(sign * eps * x, (k_steps + 1, grid.size)).copy()
-        if kernel == "chain":
-            ref = bridge.reference(problem.linear_flow(), v)
-        else:
-            phi = np.broadcast_to(bridge.confinement, (k_steps, grid.size))
-            steps = gaussian_steps(phi, grid, problem.noise, problem.dt)
-            ref = entropic.FrozenReference(steps, -bridge.expand(bridge.omega) * v, True)
-        sol = entropic.solve_operator(ref, problem.initial, problem.final, np.zeros(grid.size),
-                                      tol=1e-12, max_iter=20000)
-        means.append(float(np.exp(sol.log_marginals(ref.log_weights))[k_steps // 2] @ x))
-    return (means[1] - means[0]) / (2 * eps)
 
 
 def test_chain_overreacts_to_a_potential_at_large_peclet_numbers_and_gaussian_steps_do_not():

@@ -40,6 +40,7 @@ import ot
 
 from mfbridge.errors import MFBridgeError
 from mfbridge.numerics.anderson import AndersonMixer
+from mfbridge.numerics.gaussian_step import GaussianStep
 from mfbridge.numerics.propagator import StepOperator
 
 
@@ -51,7 +52,7 @@ class UnderflowError(MFBridgeError):
 class FrozenReference:
     """The reference of one outer iteration: K step operators and node log-weights (K+1, *shape)."""
 
-    steps: list[StepOperator]
+    steps: list[StepOperator] | list[GaussianStep]  # GaussianStep: log_domain only
     log_weights: np.ndarray
     log_domain: bool = False  # propagate exactly in the log domain (slower, any dynamic range)
 

@@ -48,7 +48,6 @@ from mfbridge.errors import ConvergenceWarning, InputError, PrecisionWarning, un
 from mfbridge.model.problem import BridgeProblem
 from mfbridge.numerics import entropic, observables
 from mfbridge.numerics.anderson import AndersonMixer
-from mfbridge.numerics.gaussian_step import MIN_WIDTH, width_in_cells
 from mfbridge.numerics.propagator import UNIFORMISATION_TAIL, StepOperator, step_tail
 from mfbridge.numerics.reference import (
     EdgeRates,
@@ -68,9 +67,6 @@ ROUTES = ("auto", "operator", "dense")
 # an outer residual this many times above max(first residual, 1) means the start is outside the
 # basin of the fixed point (transient rises of 100x the best residual occur in converging runs)
 DIVERGENCE_FACTOR = 10.0
-# above this cell Péclet number a failure message suggests refining the grid (common practice,
-# no source: finite-volume drift-diffusion schemes resolve layers only for |v|h/D <~ 2)
-PECLET_HINT = 2.0
 # Sinkhorn tolerance while the outer loop is far out: INNER_FRACTION x the outer residual (at
 # most 10 x INNER_FRACTION), 100x tighter after STAGNATION iterations without a new best
 # residual, down to INNER_FRACTION_MIN. Inexact sub-solves enter V through the potentials,
@@ -82,11 +78,6 @@ INNER_FRACTION = 1e-4
 INNER_FRACTION_MIN = 1e-6
 STAGNATION = 4
 MAX_STARTS = 64
-SINKHORN_ANDERSON = 5
-# relative rounding of V with the Gaussian steps: on the sigma = 0.05 reference case (640 cells,
-# 32 steps) the residual stagnated between 1.1e-12 and 3.5e-11 of T max_k sum p|V| (tol 1e-9
-# was never met: 1067 outer iterations, then continuations)
-ROUNDOFF = 1e-10
 
 
 @dataclass(frozen=True)
@@ -121,11 +112,8 @@ class SolverOptions:
       ``starts - 1`` tilted ones (:mod:`mfbridge.solvers.multistart`); the cheapest converged
       bridge is returned, the other distinct ones are in ``result.alternatives`` and a
       :class:`~mfbridge.errors.MultipleBridgesWarning` names their costs (1: one start);
-    * ``kernel``: the reference's time step: ``"chain"`` (the Scharfetter–Gummel jump chain,
-      exact exponential per step), ``"gaussian"`` (the split heat kernel, a sampled Gaussian
-      per step, always in the log domain: :mod:`mfbridge.solvers.small_noise`), or ``"auto"``
-      (the chain, unless its estimated cell Péclet number is above 2 and σ√Δt is at least 0.7
-      cell: small noise).
+    * ``kernel``: the reference's steps: ``"chain"`` (Scharfetter–Gummel), ``"gaussian"`` (the
+      split heat kernel, for small noise), ``"auto"`` (:mod:`mfbridge.solvers.small_noise`).
     """
 
     method: str = "optimal"
@@ -205,9 +193,8 @@ class _Bridge:
                  log_domain: bool = False, kernel: str = "chain") -> None:
         self.problem = problem
         self.scale = scale  # the interaction used is scale * W (continuation)
-        self.kernel = kernel  # "chain" or "gaussian" (small_noise.KERNELS without "auto")
+        self.kernel = kernel  # "chain" or "gaussian"; the Gaussian steps are always in logs
         self._phi_mid = np.empty(0)  # Φ at the step midpoints of the last Gaussian reference
-        # the Gaussian steps are applied in the log domain only
         self.log_domain = log_domain or kernel == "gaussian"
         grid = problem.grid
         self.grid = grid
@@ -241,7 +228,7 @@ class _Bridge:
         if self.kernel == "gaussian":
             self._phi_mid = phi_mid  # V is the derivative at the reference of this iteration
             steps = small_noise.gaussian_steps(phi_mid, self.grid, self.problem.noise, self.dt)
-            return entropic.FrozenReference(steps, log_weights, True)  # type: ignore[arg-type]
+            return entropic.FrozenReference(steps, log_weights, True)
         rates = edge_rates(phi_mid, self.grid, self.problem.noise)
         steps = []
         for k in range(self.k_steps):
@@ -441,12 +428,8 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
             f"the static coupling of {grid.size} cells needs an n x n kernel; it is available up "
             f"to {COUPLING_MAX_CELLS} cells (use route=operator without coupling)"
         )
-    kernel_note = ""
-    if options.kernel == "auto":
-        found = small_noise.resolution(problem)
-        options = dataclasses.replace(options, kernel=found.kernel)
-        if found.kernel == "gaussian":
-            kernel_note = f" with Gaussian steps ({found.describe()})"
+    kernel, kernel_note = small_noise.choose_kernel(problem, options.kernel)
+    options = dataclasses.replace(options, kernel=kernel)
     if warm_start is None:
         start = _cold_start(problem)
     else:
@@ -486,10 +469,8 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
     if status == "converged":
         message = (f"converged in {it} outer iterations{note}: residual {residual:.2e}, "
                    f"marginal error {solved.sol.marginal_error:.2e}")
-        floor = _roundoff_floor(bridge, solved.p, outcome.v_bar)
-        if floor > options.tol:
-            message += (f" (the tolerance is below the rounding of V here: stopped under "
-                        f"{floor:.1e}, {ROUNDOFF:g} of T max_k sum p|V|)")
+        message += small_noise.floor_note(bridge.kernel, problem, solved.p, outcome.v_bar,
+                                          options.tol)
     elif outcome.stop:
         message = f"not converged: stopped after {it} outer iterations{note}: {outcome.stop}"
         warnings.warn(ConvergenceWarning(message), stacklevel=3)
@@ -497,14 +478,8 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
         message = (f"{status.replace('_', ' ')} after {it} outer iterations{note}: last residual "
                    f"{residual:.2e} (tolerance {options.tol:.1e}), marginal error "
                    f"{solved.sol.marginal_error:.2e}")
-        peclet = _cell_peclet(bridge, solved)
-        width = min(width_in_cells(problem.noise, problem.dt, grid.spacing))
-        if options.kernel == "gaussian" and width < MIN_WIDTH:
-            message += "; " + small_noise.gaussian_hint(width)
-        elif options.kernel == "chain" and peclet > PECLET_HINT:
-            message += (f"; the largest cell Péclet number is {peclet:.3g}: the grid is coarse "
-                        f"for this noise (the outer iteration needs |u|h/D of order 1 or below); "
-                        f"refine the grid")
+        message += small_noise.failure_hint(bridge.kernel, problem, solved.p, solved.phi,
+                                            solved.log_h)
         warnings.warn(ConvergenceWarning(message), stacklevel=3)
     solve_seconds = float(sum(h["seconds"] for h in history))
     # a diverged iterate may hold potentials whose products overflow: its cost is then inf/NaN
@@ -527,7 +502,7 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
     grid = problem.grid
     inner = entropic.solve_dense if route == "dense" else entropic.solve_operator
     # Anderson-mixed Sinkhorn with the Gaussian steps (small noise: plain Sinkhorn is slow)
-    accelerate = ({"anderson": SINKHORN_ANDERSON}
+    accelerate = ({"anderson": small_noise.SINKHORN_ANDERSON}
                   if route != "dense" and bridge.kernel == "gaussian" else {})
     mu, nu = problem.initial, problem.final
     interacting = not bridge.pair.is_zero
@@ -568,7 +543,7 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
                 and not bridge.log_domain):
             status = "stalled"  # the entropic problem cannot be solved to working precision
             break
-        floor = _roundoff_floor(bridge, solved.p, v_new)
+        floor = small_noise.roundoff_floor(bridge.kernel, problem, solved.p, v_new)
         if residual <= max(options.tol, floor) and sol.marginal_error <= options.tol:
             status = "converged"
             break
@@ -599,17 +574,6 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
     return _Outcome(status, solved, ref, v_bar, residual, bridge, stop=stop)
 
 
-def _roundoff_floor(bridge: _Bridge, p: np.ndarray, v: np.ndarray) -> float:
-    """The smallest residual the Gaussian steps can resolve (0 for the chain): V is O(1/σ²)
-    and computed from log-potentials of size O(1/σ²), whose rounding puts a floor under
-    :math:`T\\max_k\\sum_i p_{k,i}|V_{k,i} - \\bar V_{k,i}|` at ``ROUNDOFF`` times
-    :math:`T\\max_k\\sum_i p_{k,i}|V_{k,i}|`."""
-    if bridge.kernel != "gaussian":
-        return 0.0
-    axes = tuple(range(1, bridge.grid.dim + 1))
-    return ROUNDOFF * bridge.problem.horizon * float((p * np.abs(v)).sum(axis=axes).max())
-
-
 def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: np.ndarray,
             options: SolverOptions, route: str, status: str, message: str, iterations: int,
             residual: float, history: list[dict[str, float]], timings: dict[str, float]
@@ -623,12 +587,9 @@ def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: n
     # path-space KL of the chain agrees to O(h^2) only while the cell Peclet number |u| h / D is
     # small; this form stays accurate at small noise, where the chain's jump statistics are not
     # Gaussian in the far tail.
-    if bridge.kernel == "gaussian":
-        # J of the flow: the chain's own rate function, KL(P | R[rho]); the flux parts at the
-        # nodes from the bridge velocity (small_noise docstring)
-        cost = entropic.path_relative_entropy(sol, ref, problem.initial, problem.final)
-        kinetic, drift = small_noise.node_flux_parts(grid, noise, bridge.omega, s.p, s.log_h,
-                                                     s.phi)
+    if bridge.kernel == "gaussian":  # the chain's KL and node fluxes (small_noise docstring)
+        cost, kinetic, drift = small_noise.gaussian_cost(problem, sol, ref, bridge.omega, s.p,
+                                                         s.log_h, s.phi)
     else:
         bridge_flux, reference_flux = _net_fluxes(bridge, s)
         control_flux = tuple(b - r for b, r in zip(bridge_flux, reference_flux, strict=True))
@@ -695,26 +656,6 @@ def _net_fluxes(bridge: _Bridge, s: _Solved
                            - bwd * np.exp(s.log_f[hi_t] + s.log_h[lo_t]))
         reference_flux.append(fwd * s.p[lo_t] - bwd * s.p[hi_t])
     return tuple(bridge_flux), tuple(reference_flux)
-
-
-def _cell_peclet(bridge: _Bridge, s: _Solved) -> float:
-    """Largest cell Péclet number |v| h / D (D = σ²/2) over faces and times, for the reference
-    drift (βΔΦ across a face) and for the control (u = σ²∇ψ gives 2Δψ across a face)."""
-    beta = 2.0 / bridge.problem.noise**2
-    largest = 0.0
-    for a in range(bridge.grid.dim):
-        ax = 1 + a
-        with np.errstate(invalid="ignore"):
-            drift = np.abs(beta * np.diff(s.phi, axis=ax))
-            control = np.abs(2 * np.diff(s.log_h, axis=ax))
-        mass = (s.p > 1e-12 * s.p.max())
-        lo, hi = faces(s.p.ndim, ax, bridge.shape[a])
-        occupied = mass[lo] | mass[hi]
-        for v in (drift, control):
-            v = v[occupied & np.isfinite(v)]
-            if v.size:
-                largest = max(largest, float(v.max()))
-    return largest
 
 
 def _describe(obj: object) -> dict[str, object]:

@@ -39,7 +39,6 @@ across a cell is large: on the σ = 0.1 case at 512 cells it put the midpoint co
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -54,13 +53,26 @@ from mfbridge.numerics.gaussian_step import (
     split_log_weight_adjoint,
     width_in_cells,
 )
-from mfbridge.numerics.reference import PairField, faces
+from mfbridge.numerics.propagator import StepOperator
+from mfbridge.numerics.reference import PairField, edge_rates, faces
 
 KERNELS = ("auto", "chain", "gaussian")
-# the chain's bridge is the diffusion's while the cell Péclet number of the control is below
-# ~2 (common practice for exponentially fitted schemes, no source; measured here: the response
-# of the chain's bridge to V is 1.8-3.3x the continuum's at Pe 3.4-6.9)
-PECLET_LIMIT = 2.0
+# Anderson depth of the Sinkhorn iterations with the Gaussian steps (entropic.solve_operator)
+SINKHORN_ANDERSON = 5
+# relative rounding of V with the Gaussian steps: on the sigma = 0.05 reference case (640 cells,
+# 32 steps) the residual stagnated between 1.1e-12 and 3.5e-11 of T max_k sum p|V| (tol 1e-9
+# was never met: 1067 outer iterations, then continuations)
+ROUNDOFF = 1e-10
+# above this cell Péclet number a failure with the chain suggests refining the grid (common
+# practice, no source: finite-volume drift-diffusion schemes resolve layers only for
+# |v|h/D <~ 2)
+PECLET_HINT = 2.0
+# above this estimated cell Péclet number kernel=auto takes the Gaussian steps. The chain's
+# bridge answers a potential too strongly by a factor that grows with it (mean_response, sigma =
+# 0.2, 10 steps): 1.15, 1.49, 2.37, 4.27, 8.18 at estimated Pe 1.9, 3.9, 7.7, 15, 31; at 3
+# (factor ~1.3) coarse grids at sigma ~ 1 (2D 32 x 32 cells: Pe 2.0) keep the chain, whose
+# measured errors there are those of its h
+PECLET_LIMIT = 3.0
 # masses below this fraction of an endpoint's largest are ignored when reading its support
 _SUPPORT = 1e-3
 
@@ -103,13 +115,13 @@ def resolution(problem: BridgeProblem) -> Resolution:
     mean, cov = observables.moments(ends, grid)
     spread = np.sqrt(np.maximum(np.diagonal(cov, axis1=1, axis2=2), 0.0))
     travel = float(np.linalg.norm(mean[1] - mean[0]) + np.abs(spread[1] - spread[0]).sum())
-    pair = PairField(grid, problem.interaction, gradient=True)
+    interacting = not getattr(problem.interaction, "is_zero", False)
     force = np.asarray(problem.confinement.grad(mean), dtype=float)
     points = grid.points.reshape(-1, grid.dim)
     drift = 0.0
     for k in range(2):
         # ∇(W * p)(m) = sum_x ∇W(m - x) p(x), at the endpoint's mean
-        field = problem.interaction.grad(mean[k][None, :] - points) if not pair.is_zero else 0.0
+        field = problem.interaction.grad(mean[k][None, :] - points) if interacting else 0.0
         total = force[k] + (np.asarray(field, dtype=float) * ends[k].reshape(-1, 1)).sum(axis=0)
         drift = max(drift, float(np.linalg.norm(total)))
     speed = travel / problem.horizon + drift
@@ -118,6 +130,37 @@ def resolution(problem: BridgeProblem) -> Resolution:
     width = min(width_in_cells(problem.noise, problem.dt, grid.spacing))
     gaussian = peclet > PECLET_LIMIT and width >= MIN_WIDTH
     return Resolution(peclet, width, "gaussian" if gaussian else "chain")
+
+
+def choose_kernel(problem: BridgeProblem, kernel: str) -> tuple[str, str]:
+    """The kernel to use for ``kernel`` (``"auto"`` resolved by :func:`resolution`) and a note
+    for the solver's message ("" unless the Gaussian steps were chosen by ``"auto"``)."""
+    if kernel != "auto":
+        return kernel, ""
+    found = resolution(problem)
+    note = f" with Gaussian steps ({found.describe()})" if found.kernel == "gaussian" else ""
+    return found.kernel, note
+
+
+def roundoff_floor(kernel: str, problem: BridgeProblem, p: np.ndarray, v: np.ndarray) -> float:
+    """The smallest self-consistency residual the Gaussian steps can resolve (0 for the chain):
+    V is O(1/σ²) and computed from log-potentials of size O(1/σ²), whose rounding puts a floor
+    under :math:`T\\max_k\\sum_i p_{k,i}|V_{k,i} - \\bar V_{k,i}|` at ``ROUNDOFF`` times
+    :math:`T\\max_k\\sum_i p_{k,i}|V_{k,i}|` (p, v: (K+1, *grid.shape))."""
+    if kernel != "gaussian":
+        return 0.0
+    axes = tuple(range(1, p.ndim))
+    return ROUNDOFF * problem.horizon * float((p * np.abs(v)).sum(axis=axes).max())
+
+
+def floor_note(kernel: str, problem: BridgeProblem, p: np.ndarray, v: np.ndarray,
+               tol: float) -> str:
+    """Says so in the message when the solver stopped at :func:`roundoff_floor` above tol."""
+    floor = roundoff_floor(kernel, problem, p, v)
+    if floor <= tol:
+        return ""
+    return (f" (the tolerance is below the rounding of V here: stopped under {floor:.1e}, "
+            f"{ROUNDOFF:g} of T max_k sum p|V|)")
 
 
 def gaussian_steps(phi_mid: np.ndarray, grid: Grid, noise: float, dt: float
@@ -145,6 +188,16 @@ def gaussian_correction(p: np.ndarray, phi_mid: np.ndarray, ref: entropic.Frozen
     return scale * pair(c) / weights
 
 
+def gaussian_cost(problem: BridgeProblem, sol: entropic.EntropicSolution,
+                  ref: entropic.FrozenReference, omega: np.ndarray, p: np.ndarray,
+                  log_h: np.ndarray, phi: np.ndarray) -> tuple[float, float, float]:
+    """J (the chain's KL, module docstring), its kinetic and its drift part for a solve with
+    the Gaussian steps; ``p``, ``log_h`` (ψ) and ``phi`` have shape (K+1, *grid.shape)."""
+    cost = entropic.path_relative_entropy(sol, ref, problem.initial, problem.final)
+    kinetic, drift = node_flux_parts(problem.grid, problem.noise, omega, p, log_h, phi)
+    return cost, kinetic, drift
+
+
 def node_flux_parts(grid: Grid, noise: float, omega: np.ndarray, p: np.ndarray,
                     log_h: np.ndarray, phi: np.ndarray) -> tuple[float, float]:
     r"""The kinetic and drift parts of J, :math:`\frac{1}{2\sigma^2}\iint |v|^2\rho` and
@@ -170,8 +223,73 @@ def node_flux_parts(grid: Grid, noise: float, omega: np.ndarray, p: np.ndarray,
             observables.flux_action(tuple(reference), p, grid, omega, noise))
 
 
-def gaussian_hint(width: float) -> str:
-    """Advice when the Gaussian steps are too narrow for the grid."""
-    factor = math.ceil(MIN_WIDTH / max(width, 1e-300) * 100) / 100
-    return (f"sigma sqrt(dt) / h = {width:.3g} is below {MIN_WIDTH:g}: use about {factor:.3g}x "
-            f"fewer time steps or {factor:.3g}x finer cells")
+def mean_response(problem: BridgeProblem, kernel: str, eps: float) -> float:
+    r"""The sensitivity :math:`d\,E[X_{T/2}]/d\varepsilon` of the bridge weighted by
+    :math:`e^{-\varepsilon\int_0^T X_t\,dt}` (W = 0, first axis), by central differences of two
+    log-domain solves with ``kernel`` ("chain" or "gaussian"): how strongly the flow answers a
+    potential such as V, the gain of the outer loop. For U = a x²/2 the continuum value is
+    :math:`(\sigma/a)^2 e^{-aT/2}(\tanh(aT/2) - (e^{aT/2} - 1))` (the Euler–Lagrange equation
+    of :math:`\min\int (\dot m + am)^2/(2\sigma^2) + \varepsilon m\,dt`)."""
+    grid, k_steps, dt = problem.grid, problem.steps, problem.dt
+    confinement = np.asarray(problem.confinement.value(grid.points), dtype=float)
+    if kernel == "chain":
+        chain = StepOperator(edge_rates(confinement, grid, problem.noise), dt, grid.shape)
+        steps: list[StepOperator] | list[GaussianStep] = [chain] * k_steps
+    else:
+        phi = np.broadcast_to(confinement, (k_steps, *grid.shape))
+        steps = gaussian_steps(phi, grid, problem.noise, dt)
+    omega = np.full(k_steps + 1, dt)
+    omega[[0, -1]] = dt / 2
+    x = grid.points[..., 0]
+    means = []
+    for sign in (-1.0, 1.0):
+        log_weights = -sign * eps * omega.reshape(-1, *([1] * grid.dim)) * x
+        ref = entropic.FrozenReference(steps, log_weights, True)
+        sol = entropic.solve_operator(ref, problem.initial, problem.final,
+                                      np.zeros(grid.shape), tol=1e-12, max_iter=20000)
+        p = np.exp(sol.log_marginals(ref.log_weights))[k_steps // 2]
+        means.append(float((p * x).sum()))
+    return (means[1] - means[0]) / (2 * eps)
+
+
+def cell_peclet(problem: BridgeProblem, p: np.ndarray, phi: np.ndarray, log_h: np.ndarray
+                ) -> float:
+    """Largest cell Péclet number |v| h / D (D = σ²/2) of a computed flow over faces and times
+    where it has mass, for the reference drift (βΔΦ across a face) and for the control
+    (u = σ²∇ψ gives 2Δψ across a face); ``p``, ``phi``, ``log_h`` (K+1, *grid.shape)."""
+    beta = 2.0 / problem.noise**2
+    largest = 0.0
+    for a in range(problem.grid.dim):
+        ax = 1 + a
+        with np.errstate(invalid="ignore"):
+            drift = np.abs(beta * np.diff(phi, axis=ax))
+            control = np.abs(2 * np.diff(log_h, axis=ax))
+        mass = (p > 1e-12 * p.max())
+        lo, hi = faces(p.ndim, ax, problem.grid.shape[a])
+        occupied = mass[lo] | mass[hi]
+        for v in (drift, control):
+            v = v[occupied & np.isfinite(v)]
+            if v.size:
+                largest = max(largest, float(v.max()))
+    return largest
+
+
+def failure_hint(kernel: str, problem: BridgeProblem, p: np.ndarray, phi: np.ndarray,
+                 log_h: np.ndarray) -> str:
+    """What a failure message adds about the grid: with the chain, the largest cell Péclet
+    number when it is above ``PECLET_HINT`` (and the Gaussian steps when they would resolve the
+    flow); with the Gaussian steps, how to make σ√Δt at least ``MIN_WIDTH`` cells."""
+    width = min(width_in_cells(problem.noise, problem.dt, problem.grid.spacing))
+    factor = MIN_WIDTH / max(width, 1e-300)
+    narrow = (f"sigma sqrt(dt) / h = {width:.3g} is below {MIN_WIDTH:g}: use {factor**2:.3g}x "
+              f"fewer time steps or {factor:.3g}x finer cells")
+    if kernel == "gaussian":
+        return "; " + narrow if width < MIN_WIDTH else ""
+    peclet = cell_peclet(problem, p, phi, log_h)
+    if peclet <= PECLET_HINT:
+        return ""
+    cure = ("or use solver.kernel=gaussian, which needs sigma sqrt(dt) >= 0.7 h only"
+            if width >= MIN_WIDTH else "or, for the Gaussian steps (solver.kernel=gaussian), "
+            + narrow)
+    return (f"; the largest cell Péclet number is {peclet:.3g}: the grid is coarse for this noise "
+            f"(the jump chain needs |u|h/D of order 1 or below); refine the grid, {cure}")
