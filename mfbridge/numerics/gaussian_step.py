@@ -8,21 +8,21 @@ above ~2: the chain's rate function is flatter than J by a factor ~Pe/2 in the t
 direction. The correction V of the outer loop is the exact derivative of that rate function, so
 the flow's response to V is amplified ~Pe/2 and the fixed point is lost (measured: the response
 of the bridge's mean to a linear potential is 3.3, 6.2, 12.0, 23.8 times the continuum's at
-Pe = 6.9, 13.7, 27.5, 55; ``experiments/study_small_noise.py``). Refining until Pe ≲ 2 costs
-~1000 cells at σ = 0.1 and ~25000 at σ = 0.02.
+Pe = 6.9, 13.7, 27.5, 55 at σ = 0.1; at σ = 0.2: ``experiments/bench_small_noise.py``, Table
+3). Refining until Pe ≲ 2 costs ~1000 cells at σ = 0.1 and ~25000 at σ = 0.02.
 
 **The step.** A sampled Gaussian tilted by :math:`e^{s y}` is again a sampled Gaussian, exact up
 to aliasing of order :math:`e^{-2\pi^2 w^2/h^2}` whatever s is (Poisson summation), so a
 discrete-time chain whose step is a sampled Gaussian of width :math:`w = \sigma\sqrt{\Delta t}`
 has the diffusion's large deviations as soon as :math:`w \gtrsim 0.7h`, at any Péclet number.
 The drift enters by Strang's splitting of the symmetrised generator: with
-:math:`L = D\Delta - \nabla\Phi\cdot\nabla = e^{-\beta\Phi/2}(D\Delta - W_s)e^{\beta\Phi/2}`,
+:math:`L = D\Delta - \nabla\Phi\cdot\nabla = e^{\beta\Phi/2}(D\Delta - W_s)e^{-\beta\Phi/2}`,
 :math:`W_s = |\nabla\Phi|^2/(2\sigma^2) - \Delta\Phi/2`, β = 2/σ²,
 
 .. math::
 
-    e^{\Delta t L} \approx e^{-\beta\Phi/2}\, e^{-\Delta t W_s/2}\, e^{\Delta t D\Delta}\,
-    e^{-\Delta t W_s/2}\, e^{\beta\Phi/2},
+    e^{\Delta t L} \approx e^{\beta\Phi/2}\, e^{-\Delta t W_s/2}\, e^{\Delta t D\Delta}\,
+    e^{-\Delta t W_s/2}\, e^{-\beta\Phi/2},
     \qquad
     M(x, y) = \frac{1}{Z(x)} \exp\Bigl(-\frac{|y - x|^2}{2\sigma^2\Delta t} + \ell(y)\Bigr),
 
