@@ -15,6 +15,7 @@ import shutil
 import subprocess
 import warnings
 from pathlib import Path
+from types import SimpleNamespace
 
 import pytest
 
@@ -290,6 +291,78 @@ def test_disk_full_while_saving_is_named(finished: Path, tmp_path: Path,
         monkeypatch.setattr("xarray.Dataset.to_netcdf", full)
         with pytest.raises(DiskFullError, match="no space left on the device at"):
             result.save(small / "run")
+
+
+def test_full_device_is_refused_before_hydra_writes(tmp_path: Path,
+                                                   monkeypatch: pytest.MonkeyPatch,
+                                                   capsys: pytest.CaptureFixture[str]) -> None:
+    """Before: on a device with a few kB free, Hydra's `OSError: [Errno 28]` traceback while
+    writing .hydra/ (exit 1). On an 8 kB tmpfs where one can be mounted, else a faked free
+    space."""
+    small = tmp_path / "small"
+    mounted = _tiny_filesystem(small, "8k")
+    if not mounted:
+        monkeypatch.setattr("shutil.disk_usage", lambda path: SimpleNamespace(free=8192))
+    monkeypatch.setattr("sys.argv", ["mfbridge", *SMALL, f"hydra.run.dir={small}/run"])
+    try:
+        with pytest.raises(SystemExit) as stop:
+            cli.main()
+        assert stop.value.code == EXIT_CODES["refused"]
+        assert not (small / "run").exists()
+    finally:
+        if mounted:
+            subprocess.run(["umount", "-l", str(small)], check=True)
+    assert f"no space left on the device at {small}/run: 8192 bytes free" in capsys.readouterr().err
+
+
+def test_disk_filling_during_a_run_is_recorded(tmp_path: Path,
+                                              monkeypatch: pytest.MonkeyPatch) -> None:
+    """Before: the record stayed 'running' (its atomic rewrite needed a block the full disk did
+    not have) and a full disk while writing config.yaml was a bare OSError. A 12 kB tmpfs
+    (measured: the record and config.yaml fit, the 11.5 kB result does not) with the start-up
+    check lowered, else injected ENOSPC on every write after the first record."""
+    monkeypatch.setattr(folders, "MIN_FREE_BYTES", 0)
+    small = tmp_path / "small"
+    mounted = _tiny_filesystem(small, "12k")
+    if not mounted:
+        real = records._atomic_write
+        calls = {"n": 0}
+
+        def full(target: Path, write: object) -> None:
+            calls["n"] += 1
+            if calls["n"] > 1:
+                raise OSError(errno.ENOSPC, "No space left on device")
+            real(target, write)
+
+        monkeypatch.setattr(records, "_atomic_write", full)
+        monkeypatch.setattr("mfbridge.result._atomic_write", full)
+    try:
+        with pytest.raises(DiskFullError, match=f"no space left on the device at {small}"):
+            run(compose(list(SMALL)), small / "run")
+        record = records.read_record(small / "run")
+        assert record.status == "failed" and "no space left on the device" in record.error
+        assert read_marker(small / "run") is None
+    finally:
+        if mounted:
+            subprocess.run(["umount", "-l", str(small)], check=True)
+
+
+def test_out_of_memory_during_a_run_is_recorded(tmp_path: Path,
+                                               monkeypatch: pytest.MonkeyPatch) -> None:
+    """An allocation that fails although the estimate fitted (numpy's _ArrayMemoryError, a
+    MemoryError): recorded 'failed' with the memory available now, exit 6, no traceback."""
+    def oom(*args: object, **kwargs: object) -> None:
+        raise MemoryError("Unable to allocate 1.38 GiB for an array with shape (11, 16777216)")
+
+    monkeypatch.setattr(cli, "solve", oom)
+    monkeypatch.setattr("sys.argv", ["mfbridge", *SMALL, f"hydra.run.dir={tmp_path}/run"])
+    with pytest.raises(SystemExit) as stop:
+        cli.main()
+    assert stop.value.code == EXIT_CODES["failed"]
+    record = records.read_record(tmp_path / "run")
+    assert record.status == "failed"
+    assert record.error.startswith("OutOfMemory: out of memory during the run (Unable to")
+    assert "available now:" in record.error
 
 
 def test_figure_failure_keeps_the_saved_status(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,

@@ -201,16 +201,6 @@ def run(cfg: Any, output_dir: str | Path, *, record_extra: dict[str, Any] | None
             log.removeFilter(label_filter)
 
 
-def _figures_flag(cfg: Any) -> bool:
-    """The config's ``figures``: a strict boolean (``figures=no`` reached the config as the
-    string 'no', and drew figures)."""
-    value = cfg.get("figures", True)
-    if not isinstance(value, bool):
-        raise InputError(f"figures must be true or false, got {value!r}; write figures=false "
-                         "(or figures=true)")
-    return value
-
-
 def _compute(cfg: Any, config: dict[str, Any], out: Path,
              record_extra: dict[str, Any] | None, sweep_dir: str | Path | None
              ) -> BridgeResult:
@@ -226,7 +216,6 @@ def _compute(cfg: Any, config: dict[str, Any], out: Path,
     try:
         records.write_record(out, record)
         (out / "config.yaml").write_text(OmegaConf.to_yaml(cfg, resolve=True))
-        figures = _figures_flag(cfg)
         warm, warm_record = choose_warm_start(config, out,
                                               None if sweep_dir is None else Path(sweep_dir))
         record.warm_start = asdict(warm_record)
@@ -245,10 +234,20 @@ def _compute(cfg: Any, config: dict[str, Any], out: Path,
         record.status, record.finished = result.status, records.now()
         record.runtime_seconds = time.perf_counter() - start
         records.write_record(out, record)
+    except MemoryError as exc:  # the estimate fitted, yet an allocation failed
+        from mfbridge.runs.resources import out_of_memory
+
+        error = out_of_memory(exc)
+        _record_end(out, record, error, time.perf_counter() - start)
+        raise error from exc
     except BaseException as exc:
-        _record_end(out, record, exc, time.perf_counter() - start)
+        full = disk_full(out, exc) if isinstance(exc, OSError | RuntimeError) and not \
+            isinstance(exc, DiskFullError) else None
+        _record_end(out, record, full or exc, time.perf_counter() - start)
+        if full is not None:  # e.g. config.yaml on a full disk: named, not a traceback
+            raise full from exc
         raise
-    if figures:
+    if cfg.get("figures", True):  # a strict boolean (checked by solve)
         _draw_figures(cfg, result, out)
     log.info("run folder: %s", out.resolve())
     return result
@@ -279,8 +278,6 @@ def _record_end(out: Path, record: records.RunRecord, exc: BaseException,
     elif isinstance(exc, InputError):
         record.status, record.error = "refused", str(exc)
     else:
-        if isinstance(exc, OSError | RuntimeError) and not isinstance(exc, DiskFullError):
-            exc = disk_full(out, exc) or exc
         record.status, record.error = "failed", f"{type(exc).__name__}: {exc}"
     record.finished, record.runtime_seconds = records.now(), seconds
     try:
@@ -377,7 +374,9 @@ def main() -> None:
     from mfbridge.runs.config_checks import override_mistakes
 
     mistakes = override_mistakes(sys.argv[1:])
-    for folder in _output_overrides(sys.argv[1:]):
+    multirun = any(a in ("-m", "--multirun") for a in sys.argv[1:])
+    # without an override the run goes below the working directory (conf/config.yaml)
+    for folder in _output_overrides(sys.argv[1:]) or ["multirun" if multirun else "runs"]:
         try:
             folders.check_output_path(folder)
         except InputError as exc:
@@ -385,7 +384,6 @@ def main() -> None:
     if mistakes:
         sys.stderr.write("".join(f"mfbridge: error: {m}\n" for m in mistakes))
         sys.exit(EXIT_CODES["refused"])
-    multirun = any(a in ("-m", "--multirun") for a in sys.argv[1:])
     try:
         with interruptible(stop_workers if multirun else None):
             _hydra_app()

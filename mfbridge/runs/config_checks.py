@@ -88,9 +88,11 @@ def check_config(cfg: Any) -> None:
     if scale not in DENSITY_SCALES:
         raise InputError(f"density_scale must be one of {', '.join(DENSITY_SCALES)}, got "
                          f"{scale!r}: e.g. density_scale=log")
-    progress = cfg.get("progress", True)
-    if not isinstance(progress, bool):
-        raise InputError(f"progress must be true or false, got {progress!r}")
+    for flag in ("progress", "figures"):  # figures=no reaches the config as the string 'no'
+        value = cfg.get(flag, True)
+        if not isinstance(value, bool):
+            raise InputError(f"{flag} must be true or false, got {value!r}; write {flag}=false "
+                             f"(or {flag}=true)")
     solver = cfg.get("solver")
     solver_target = solver.get("_target_") if hasattr(solver, "get") else None
     # groups read by the direct solver only: (group, target of the option that changes nothing,

@@ -13,13 +13,15 @@ config (killed, interrupted, failed, refused: its record says so), and refuses
   unreadable one, or with the record of another config: they were not made by this run.
 
 :func:`check_output_path` is the check made on ``hydra.run.dir``/``hydra.sweep.dir`` before
-Hydra creates anything (a path that is a file, or on a pseudo file system such as /proc).
+Hydra creates anything (a path that is a file, on a pseudo file system such as /proc, or on a
+device with less than :data:`MIN_FREE_BYTES` free: Hydra's own files would fail with a traceback).
 """
 
 from __future__ import annotations
 
 import logging
 import os
+import shutil
 from pathlib import Path
 from typing import Any
 
@@ -32,6 +34,8 @@ log = logging.getLogger("mfbridge")
 
 #: roots of the kernel's pseudo file systems, where no run folder can be made
 PSEUDO_ROOTS = ("/proc", "/sys", "/dev")
+#: free space below which no run is started (Hydra's files, the record, a small result)
+MIN_FREE_BYTES = 1 << 20
 _ADVICE = "choose another output folder (hydra.run.dir / hydra.sweep.dir) or delete it"
 
 
@@ -106,6 +110,14 @@ def check_output_path(path: str | Path) -> None:
     if not os.access(parent, os.W_OK | os.X_OK):
         raise RunFolderError(f"{parent} is not writable, so {target} cannot be made; choose "
                              "another output folder (hydra.run.dir / hydra.sweep.dir)")
+    try:
+        free = shutil.disk_usage(parent).free
+    except OSError:
+        return
+    if free < MIN_FREE_BYTES:
+        raise RunFolderError(f"no space left on the device at {target}: {free} bytes free, a "
+                             f"run needs at least {MIN_FREE_BYTES >> 20} MB; free some space or "
+                             "write the run elsewhere (hydra.run.dir / hydra.sweep.dir)")
 
 
 def mark_interrupted(folder: str | Path, reason: str) -> bool:

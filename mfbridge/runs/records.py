@@ -23,6 +23,7 @@ numerics.
 from __future__ import annotations
 
 import datetime as _dt
+import errno
 import hashlib
 import json
 import logging
@@ -247,8 +248,17 @@ def hydra_job() -> tuple[list[str] | None, dict[str, str] | None, dict[str, Any]
 
 
 def _write_json(path: Path, data: Any) -> None:
+    """Write ``data`` to ``path`` atomically (a temporary file renamed over it). On a full disk
+    there may be no room for the temporary copy; an existing file is then rewritten in place,
+    in the blocks it holds already (a run's last record must say why it ended)."""
     text = json.dumps(data, indent=2, sort_keys=False, default=str) + "\n"
-    _atomic_write(path, lambda tmp: Path(tmp).write_text(text))
+    try:
+        _atomic_write(path, lambda tmp: Path(tmp).write_text(text))
+    except OSError as exc:
+        if exc.errno not in (errno.ENOSPC, getattr(errno, "EDQUOT", errno.ENOSPC)) or \
+                not path.is_file():
+            raise
+        path.write_text(text)
 
 
 def new_record(config: dict[str, Any], **extra: Any) -> RunRecord:

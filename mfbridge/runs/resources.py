@@ -17,7 +17,7 @@ import logging
 import resource
 from pathlib import Path
 
-from mfbridge.errors import InputError
+from mfbridge.errors import InputError, MFBridgeError
 from mfbridge.solvers.memory import MemoryEstimate, format_bytes
 
 log = logging.getLogger("mfbridge")
@@ -25,6 +25,22 @@ log = logging.getLogger("mfbridge")
 
 class MemoryRefusal(InputError):
     """A solve would need more memory than the machine can give this process."""
+
+
+class OutOfMemory(MFBridgeError):
+    """An allocation failed during a run that the estimate let through (another process took
+    the memory meanwhile, or the estimate was low): the run is recorded ``failed``."""
+
+
+def out_of_memory(exc: MemoryError) -> OutOfMemory:
+    """The :class:`OutOfMemory` error for ``exc``, with what is available now and advice."""
+    have, source = available_memory()
+    now = "unknown" if have is None else f"{format_bytes(have)} ({source})"
+    return OutOfMemory(
+        f"out of memory during the run ({exc or 'MemoryError'}); available now: {now}. The "
+        "estimate logged at the start fitted, so other processes may have taken the memory "
+        "since: run it again when more memory is free, or use fewer cells (grid.shape) or "
+        "fewer time steps (steps)")
 
 
 def _meminfo(key: str) -> int | None:
