@@ -24,6 +24,7 @@ from mfbridge.errors import (
     MFBridgeError,
     MultipleBridgesWarning,
     PrecisionWarning,
+    ResolutionWarning,
     RunStatusWarning,
 )
 from mfbridge.model.endpoints import Gaussian, GaussianMixture, UniformBox
@@ -52,6 +53,7 @@ __all__ = [
     "MFBridgeError",
     "MultipleBridgesWarning",
     "PrecisionWarning",
+    "ResolutionWarning",
     "RunStatusWarning",
     "SolverOptions",
     "UniformBox",

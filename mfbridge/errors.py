@@ -36,6 +36,11 @@ class PrecisionWarning(UserWarning):
     """The fast route lost precision and the solver switched to a slower exact one."""
 
 
+class ResolutionWarning(UserWarning):
+    """The grid resolves an endpoint more coarsely than asked (e.g. the automatic grid capped
+    its cell count); the message says what to set for the full resolution."""
+
+
 class MultipleBridgesWarning(UserWarning):
     """A multi-start solve found several different bridges (critical points of the rate
     function); the cheapest is returned and the others are kept in ``result.alternatives``."""

@@ -4,6 +4,7 @@ a clear InputError for every malformed input."""
 from __future__ import annotations
 
 import math
+import re
 import tempfile
 from collections.abc import Callable
 from pathlib import Path
@@ -180,6 +181,57 @@ def test_box_from_samples_formula(tmp_path: Path) -> None:
     grid = auto_grid(a, b, margin=0.1)
     assert grid.spacing[0] == pytest.approx(0.1 / 1.5, rel=0.02)
     assert b.masses(grid).sum() == pytest.approx(1.0)
+
+
+def _snapshots(tmp_path: Path, final_sd: float, outlier: float | None = None
+               ) -> tuple[Path, Path]:
+    rng = np.random.default_rng(7)
+    a = rng.normal(-1.0, 0.4, 300)
+    if outlier is not None:
+        a[17] = outlier
+    return (_csv(tmp_path / "a.csv", "x", a[:, None]),
+            _csv(tmp_path / "b.csv", "x", rng.normal(1.2, final_sd, 300)[:, None]))
+
+
+def test_an_outlier_is_named_not_blamed_on_the_bandwidth(tmp_path: Path) -> None:
+    """Before: one sample at x = 1e6 among 300 was blamed on 'the bandwidth of the final
+    samples ... spacing 6477.8' with the advice of a finer grid (the automatic grid had capped
+    its 1.1e7 cells at 256 without a word). Now the sample is named with its distance from the
+    median in standard deviations, by the robust estimate 1.4826 x MAD, here against scipy's
+    median_abs_deviation(scale='normal') (Rousseeuw & Croux, JASA 88, 1993)."""
+    from scipy.stats import median_abs_deviation
+
+    a_path, b_path = _snapshots(tmp_path, 0.3, outlier=1e6)
+    a = np.loadtxt(a_path, skiprows=1)
+    z = (1e6 - np.median(a)) / median_abs_deviation(a, scale="normal")
+    named = (rf"1 outlying initial sample in sample file a.csv: line 19 \(x = 1e\+06, "
+             rf"{re.escape(f'{z:.3g}')} standard deviations from the median\)\. Drop the "
+             r"outlying samples from the file or clip them")
+    with pytest.raises(InputError, match=named):
+        auto_grid(Samples(a_path), Samples(b_path))
+    overrides = ["endpoints=samples", f"endpoints.initial.path={a_path}",
+                 f"endpoints.final.path={b_path}"]
+    for extra in ([], ["grid.shape=200"]):  # cells chosen or given: the same diagnosis
+        with pytest.raises(InputError, match=named):
+            mfbridge.build_problem(compose(overrides + extra))
+    # the same snapshot without the outlier builds its box and grid
+    clean = _snapshots(tmp_path, 0.3)
+    assert auto_grid(Samples(clean[0]), Samples(clean[1])).shape[0] < 256
+
+
+def test_a_capped_cell_count_is_never_silent(tmp_path: Path) -> None:
+    """Before: the automatic grid clipped its cell count to 256 without a word. A final
+    snapshot 0.15 wide (kernel sd 0.048) on a box of 11.3 wants 355 cells: warned, 256 kept
+    (1.08 cells per sd); one 0.001 wide wants 5e4 cells: refused with the count to give."""
+    a_path, b_path = _snapshots(tmp_path, 0.15)
+    with pytest.warns(mfbridge.ResolutionWarning, match=r"stops at 256 cells per axis: .* "
+                      r"1\.08 cells wide instead of 1\.5; give grid\.shape=355 "):
+        grid = auto_grid(Samples(a_path), Samples(b_path))
+    assert grid.shape == (256,)
+    a_path, b_path = _snapshots(tmp_path, 0.001)
+    with pytest.raises(InputError, match=r"the automatic grid stops at 256 cells per axis, "
+                       r"where the narrowest kernel .* need grid\.shape=\d{5} \(mind the memory"):
+        auto_grid(Samples(a_path), Samples(b_path))
 
 
 def test_demo_config_builds_on_the_fitted_box() -> None:

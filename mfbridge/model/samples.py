@@ -40,12 +40,13 @@ expected and what was found.
 from __future__ import annotations
 
 import math
+import warnings
 from typing import Any, ClassVar
 
 import numpy as np
 from scipy.linalg import solve_triangular
 
-from mfbridge.errors import InputError
+from mfbridge.errors import InputError, ResolutionWarning
 from mfbridge.model.endpoints import MIN_WIDTH_CELLS, Endpoint, box_text
 from mfbridge.model.grid import Grid
 from mfbridge.model.sample_files import (
@@ -66,6 +67,7 @@ __all__ = [
     "auto_grid",
     "box_from_samples",
     "check_same_dimension",
+    "outliers",
     "resolve_path",
 ]
 
@@ -415,6 +417,91 @@ def _box_and_widths(initial: Endpoint, final: Endpoint, margin: Any
 AUTO_CELLS = (16, 256)
 """Smallest and largest number of cells per axis chosen by :func:`auto_grid`."""
 
+OUTLIER_SDS = 10.0
+"""A sample farther than this many (robust) standard deviations from its snapshot's median
+along an axis is named as outlying when the automatic box cannot be resolved."""
+
+
+def outliers(samples: Samples, limit: float = OUTLIER_SDS
+             ) -> list[tuple[int, int, float, float]]:
+    """The samples (with weight > 0) farther than ``limit`` standard deviations from the median
+    along some axis, as (sample index, axis, value, distance in standard deviations), farthest
+    first. Per axis, the standard deviation is estimated as 1.4826 × the median absolute
+    deviation from the median, which a few outliers do not inflate (it equals the standard
+    deviation for normal data: Rousseeuw & Croux, "Alternatives to the median absolute
+    deviation", J. Amer. Statist. Assoc. 88, 1993); an axis whose deviation is 0 is skipped."""
+    data = samples.data
+    carried = np.flatnonzero(data.weights > 0)
+    pts = data.positions[carried]
+    median = np.median(pts, axis=0)
+    scale = 1.4826 * np.median(np.abs(pts - median), axis=0)
+    found = []
+    for k in range(pts.shape[1]):
+        if not scale[k] > 0:
+            continue
+        z = np.abs(pts[:, k] - median[k]) / scale[k]
+        found += [(int(carried[i]), k, float(pts[i, k]), float(z[i]))
+                  for i in np.flatnonzero(z > limit)]
+    return sorted(found, key=lambda f: -f[3])
+
+
+def _outlier_notes(initial: Endpoint, final: Endpoint, shown: int = 5) -> list[str]:
+    notes = []
+    for name, e in (("initial", initial), ("final", final)):
+        if not isinstance(e, Samples):
+            continue
+        found = outliers(e)
+        if not found:
+            continue
+        labels = e.data.labels
+        listed = ", ".join(f"{e.data.where(i)} ({labels[k]} = {value:.6g}, {z:.3g} standard "
+                           "deviations from the median)" for i, k, value, z in found[:shown])
+        more = f" and {len(found) - shown} more" if len(found) > shown else ""
+        count = len({i for i, *_ in found})
+        notes.append(f"{count} outlying {name} sample{'s' if count > 1 else ''} in "
+                     f"{e.source}: {listed}{more}")
+    return notes
+
+
+def _check_resolution(initial: Endpoint, final: Endpoint, grid: Grid, width: np.ndarray,
+                      wanted: np.ndarray | None, cells_per_width: Any) -> None:
+    """Say why the automatic box cannot resolve the endpoints, never cap it silently: outlying
+    samples (named) that stretch the box, a kernel narrower than a cell (refused), or a cell
+    count capped at :data:`AUTO_CELLS` (a :class:`ResolutionWarning`)."""
+    if not np.all(width > 0):
+        return
+    h = np.asarray(grid.spacing)
+    per_sd = width / h  # the narrowest kernel's standard deviation, in cells, per axis
+    capped = wanted is not None and bool(np.any(wanted > np.asarray(grid.shape)))
+    if not capped and np.all(per_sd >= MIN_WIDTH_CELLS):
+        return
+    k = int(np.argmin(per_sd))
+    box = box_text(grid.lower, grid.upper, ".4g")
+    notes = _outlier_notes(initial, final)
+    if notes:
+        extent = grid.upper[k] - grid.lower[k]
+        raise InputError(
+            f"the box fitted to the samples, {box}, is {extent / width[k]:.3g} times the "
+            f"narrowest kernel's standard deviation ({width[k]:.3g}) along axis {k}, because of "
+            f"{'; '.join(notes)}. Drop the outlying samples from the file or clip them to the "
+            "range of the others, or set the box and the cells yourself (grid=line, plane or "
+            "cube with grid.lower, grid.upper and grid.shape)")
+    if wanted is None:
+        return  # cells given by the user: Samples.masses says when a kernel is too narrow
+    need = [int(v) for v in wanted]
+    if per_sd[k] < MIN_WIDTH_CELLS:
+        raise InputError(
+            f"the automatic grid stops at {AUTO_CELLS[1]} cells per axis, where the narrowest "
+            f"kernel (standard deviation {width[k]:.3g}) is {per_sd[k]:.3g} cells wide along "
+            f"axis {k} of the box {box}, below {MIN_WIDTH_CELLS:g}; {cells_per_width:g} cells per "
+            f"standard deviation need grid.shape={need if len(need) > 1 else need[0]} (mind "
+            "the memory estimate), or use a larger bandwidth or method=histogram")
+    warnings.warn(ResolutionWarning(
+        f"the automatic grid stops at {AUTO_CELLS[1]} cells per axis: along axis {k} of the box "
+        f"{box} the narrowest kernel (standard deviation {width[k]:.3g}) is {per_sd[k]:.3g} "
+        f"cells wide instead of {cells_per_width:g}; give grid.shape="
+        f"{need if len(need) > 1 else need[0]} for that resolution"), stacklevel=3)
+
 
 def auto_grid(initial: Endpoint, final: Endpoint, shape: Any = None, margin: float = 0.2,
               cells_per_width: float = 1.5) -> Grid:
@@ -424,15 +511,22 @@ def auto_grid(initial: Endpoint, final: Endpoint, shape: Any = None, margin: flo
     axis k, h_k = s_k / ``cells_per_width`` with s_k the narrower of the two snapshots' kernel
     standard deviations along k (the endpoint's own for parametric endpoints), clipped to
     :data:`AUTO_CELLS` cells; 64 cells per axis when neither snapshot has a width (histograms).
+    Never silently: when the box cannot resolve the narrowest kernel because of outlying
+    samples (:func:`outliers`), an :class:`InputError` names them; a count capped at the
+    largest of :data:`AUTO_CELLS` is refused when a kernel is then narrower than a cell, else
+    warned about (:class:`~mfbridge.errors.ResolutionWarning`).
     """
     lower, upper, width = _box_and_widths(initial, final, margin)
+    wanted = None
     if shape is None:
         if isinstance(cells_per_width, (bool, np.bool_)) or not isinstance(
                 cells_per_width, (int, float)) or not cells_per_width > 0:
             raise InputError(f"cells_per_width must be a positive number, got {cells_per_width!r}")
         if np.all(width > 0):
-            n = np.ceil((upper - lower) * float(cells_per_width) / width)
-            shape = tuple(int(v) for v in np.clip(n, *AUTO_CELLS))
+            wanted = np.ceil((upper - lower) * float(cells_per_width) / width)
+            shape = tuple(int(v) for v in np.clip(wanted, *AUTO_CELLS))
         else:
             shape = 64
-    return Grid(lower=tuple(map(float, lower)), upper=tuple(map(float, upper)), shape=shape)
+    grid = Grid(lower=tuple(map(float, lower)), upper=tuple(map(float, upper)), shape=shape)
+    _check_resolution(initial, final, grid, width, wanted, cells_per_width)
+    return grid
