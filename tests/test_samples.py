@@ -221,11 +221,13 @@ def test_an_outlier_is_named_not_blamed_on_the_bandwidth(tmp_path: Path) -> None
 
 def test_a_capped_cell_count_is_never_silent(tmp_path: Path) -> None:
     """Before: the automatic grid clipped its cell count to 256 without a word. A final
-    snapshot 0.15 wide (kernel sd 0.048) on a box of 11.3 wants 355 cells: warned, 256 kept
-    (1.08 cells per sd); one 0.001 wide wants 5e4 cells: refused with the count to give."""
-    a_path, b_path = _snapshots(tmp_path, 0.15)
+    snapshot of standard deviation 0.1 (kernel sd 0.0295) on the fitted box [-3.79, 2.50] wants
+    ceil(6.29 x 1.5 / 0.0295) = 321 cells (measured): warned, 256 kept, where a cell is
+    6.29 / 256 = 0.0246 and the kernel 1.2 cells wide; one of 0.001 wants 29201 cells (measured):
+    refused with the count to give."""
+    a_path, b_path = _snapshots(tmp_path, 0.1)
     with pytest.warns(mfbridge.ResolutionWarning, match=r"stops at 256 cells per axis: .* "
-                      r"1\.08 cells wide instead of 1\.5; give grid\.shape=355 "):
+                      r"1\.2 cells wide instead of 1\.5; give grid\.shape=321 "):
         grid = auto_grid(Samples(a_path), Samples(b_path))
     assert grid.shape == (256,)
     a_path, b_path = _snapshots(tmp_path, 0.001)
