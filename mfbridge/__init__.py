@@ -5,8 +5,10 @@ pair interaction W, noise σ), compute the most likely evolution between them �
 the large-deviation rate function of the empirical process — with its cost.
 
 Entry points: :func:`compose` and :func:`solve` (configs), :func:`solve_bridge` (objects),
-:func:`load` (saved results), :func:`check` (particle check), :func:`lq_bridge` (exact
-linear–quadratic bridges). Importing the package imports neither Hydra nor matplotlib.
+:func:`solve_series` (through several snapshots), :func:`fit` and :func:`fit_series` (model
+parameters from snapshots), :func:`compare_fits` (models by N·ΣJ), :func:`load` (saved results),
+:func:`check` (particle check), :func:`lq_bridge` (exact linear–quadratic bridges). Importing the
+package imports neither Hydra nor matplotlib.
 
 Layout (imports go one way, left to right): :mod:`mfbridge.model` (what the user states) ←
 :mod:`mfbridge.numerics` (building blocks) ← :mod:`mfbridge.solvers` and
@@ -30,10 +32,14 @@ from mfbridge.errors import (
 from mfbridge.model.endpoints import Gaussian, GaussianMixture, UniformBox
 from mfbridge.model.grid import Grid
 from mfbridge.model.problem import BridgeProblem
+from mfbridge.model.series import SeriesProblem, Snapshot
 from mfbridge.result import BridgeResult
 from mfbridge.runs.api import build_problem, check, compose, load, solve
+from mfbridge.runs.fitting import compare_fits, fit
+from mfbridge.solvers.fit import FitOptions, FitParameter, compare_models, fit_series
 from mfbridge.solvers.fixed_point import Iteration, SolverOptions, solve_bridge
 from mfbridge.solvers.linear_quadratic import LQBridge, lq_bridge
+from mfbridge.solvers.series import solve_series
 
 _moved.install()
 
@@ -44,6 +50,8 @@ __all__ = [
     "BridgeResult",
     "ConvergenceWarning",
     "DiskFullError",
+    "FitOptions",
+    "FitParameter",
     "Gaussian",
     "GaussianMixture",
     "Grid",
@@ -55,13 +63,20 @@ __all__ = [
     "PrecisionWarning",
     "ResolutionWarning",
     "RunStatusWarning",
+    "SeriesProblem",
+    "Snapshot",
     "SolverOptions",
     "UniformBox",
     "build_problem",
     "check",
+    "compare_fits",
+    "compare_models",
     "compose",
+    "fit",
+    "fit_series",
     "load",
     "lq_bridge",
     "solve",
     "solve_bridge",
+    "solve_series",
 ]

@@ -98,6 +98,30 @@ class Alternative:
 
 
 @dataclass
+class Segment:
+    """One segment of a bridge through a series of snapshots (:mod:`mfbridge.model.series`):
+    from the snapshot at ``start`` to the one at ``end``; its nodes are ``first`` to
+    ``first + steps`` of the joined result's times; its cost J and parts, status, message and
+    outer iterations."""
+
+    start: float
+    end: float
+    first: int
+    steps: int
+    cost: float
+    cost_kinetic: float
+    cost_drift: float
+    cost_free_energy: float
+    status: str
+    message: str
+    iterations: int
+
+    def summary(self) -> dict[str, Any]:
+        """The record written into ``summary.json``."""
+        return dict(self.__dict__)
+
+
+@dataclass
 class BridgeResult:
     r"""The mean-field Schrödinger bridge on a grid.
 
@@ -154,6 +178,8 @@ class BridgeResult:
     # open systems (direct solver with reservoirs): the steady profile, in the units and
     # normalisation of ``density`` (grid.shape)
     steady_density: np.ndarray | None = None
+    # a bridge through more than two snapshots: its segments (times[seg.first] = seg.start)
+    segments: list[Segment] = field(default_factory=list)
 
     @property
     def converged(self) -> bool:
@@ -161,7 +187,7 @@ class BridgeResult:
 
     @property
     def horizon(self) -> float:
-        return float(self.times[-1])
+        return float(self.times[-1] - self.times[0])
 
     @property
     def masses(self) -> np.ndarray:
@@ -213,6 +239,7 @@ class BridgeResult:
             "timings": self.timings,
             "start": self.start,
             "alternatives": [a.summary() for a in self.alternatives],
+            **({"segments": [s.summary() for s in self.segments]} if self.segments else {}),
         }
 
     def _noise_input(self) -> str:
@@ -353,6 +380,7 @@ class BridgeResult:
             start=summary.get("start", ""),
             stopping=summary.get("stopping", {}),
             steady_density=ds["steady_density"].values if "steady_density" in ds else None,
+            segments=[Segment(**s) for s in summary.get("segments", [])],
         )
 
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import re
 import subprocess
 import sys
 from functools import cache
@@ -16,7 +17,15 @@ from hydra.utils import instantiate
 from omegaconf import open_dict
 
 import mfbridge
-from mfbridge import BridgeProblem, Gaussian, Grid, InputError, SolverOptions, compose
+from mfbridge import (
+    BridgeProblem,
+    Gaussian,
+    Grid,
+    InputError,
+    SeriesProblem,
+    SolverOptions,
+    compose,
+)
 from mfbridge.model.potentials import Harmonic, HarmonicInteraction
 from mfbridge.runs.api import CONF_DIR, GROUPS
 from mfbridge.solvers.direct import DirectOptions
@@ -46,17 +55,31 @@ def _options(group: str) -> list[str]:
     return sorted(path.stem for path in (CONF_DIR / group).glob("*.yaml"))
 
 
+def _for_series(group: str, option: str) -> bool:
+    """Options that describe or need a series of snapshots (a ``snapshots`` entry, or an
+    interpolation of the endpoints' one)."""
+    text = (CONF_DIR / group / f"{option}.yaml").read_text()
+    return re.search(r"^snapshots:|\$\{endpoints\.snapshots\}", text, re.MULTILINE) is not None
+
+
 def _grid_dim(option: str) -> int:
-    grid = instantiate(compose([f"grid={option}"]).grid)
+    extra = ["endpoints=series"] if _for_series("grid", option) else []
+    grid = instantiate(compose([f"grid={option}", *extra]).grid)
     assert isinstance(grid, Grid)
     return grid.dim
+
+
+def _laws(endpoints: Any) -> list[Any]:
+    if "snapshots" in endpoints:
+        return [snapshot["law"] for snapshot in endpoints["snapshots"]]
+    return [endpoints["initial"], endpoints["final"]]
 
 
 @cache
 def _endpoint_dim(option: str) -> int:
     choice = f"endpoints={option}"
     endpoints = instantiate(compose([choice, *REQUIRED.get(choice, [])]).endpoints)
-    dims = {endpoints["initial"].dim, endpoints["final"].dim}
+    dims = {law.dim for law in _laws(endpoints)}
     assert len(dims) == 1, f"endpoints={option} mixes dimensions {dims}"
     return dims.pop()
 
@@ -67,8 +90,9 @@ def _matching_grid(dim: int) -> str:
     return found[0]
 
 
-def _matching_endpoints(dim: int) -> str | None:
-    found = [opt for opt in _options("endpoints") if _endpoint_dim(opt) == dim]
+def _matching_endpoints(dim: int, series: bool = False) -> str | None:
+    found = [opt for opt in _options("endpoints") if _endpoint_dim(opt) == dim
+             and _for_series("endpoints", opt) == series]
     return found[0] if found else None
 
 
@@ -91,13 +115,17 @@ def test_every_option_composes_and_builds(group: str, option: str) -> None:
     cfg = compose(overrides)
     if group == "grid":
         dim = _grid_dim(option)
-        endpoints = _matching_endpoints(dim)
+        endpoints = _matching_endpoints(dim, _for_series("grid", option))
         if endpoints is not None:
             cfg = compose([*overrides, f"endpoints={endpoints}"])
     problem = mfbridge.build_problem(cfg)
-    assert isinstance(problem, BridgeProblem)
-    assert problem.initial.shape == problem.grid.shape == problem.final.shape
-    for masses in (problem.initial, problem.final):
+    if isinstance(problem, SeriesProblem):
+        laws = [snapshot.law for snapshot in problem.snapshots]
+    else:
+        assert isinstance(problem, BridgeProblem)
+        laws = [problem.initial, problem.final]
+    for masses in laws:
+        assert masses.shape == problem.grid.shape
         assert np.all(masses >= 0)
         assert masses.sum() == pytest.approx(1.0, abs=1e-12)
     if group == "endpoints":

@@ -286,13 +286,19 @@ def _grid_for(dim: int) -> Grid:
 def test_hydra_endpoint_configs(path: Path) -> None:
     with initialize_config_dir(config_dir=str(CONF), version_base="1.3"):
         cfg = compose(config_name=f"endpoints/{path.stem}")
-    assert set(cfg.endpoints) == {"initial", "final"}
     built = instantiate(cfg.endpoints)
-    initial, final = built["initial"], built["final"]
-    assert isinstance(initial, Endpoint) and isinstance(final, Endpoint)
-    assert initial.dim == final.dim
-    grid = _grid_for(initial.dim)
-    for name, endpoint in (("initial", initial), ("final", final)):
+    if "snapshots" in cfg.endpoints:  # a series: every snapshot's law, in time order
+        assert set(cfg.endpoints) == {"snapshots"}
+        times = [snapshot["time"] for snapshot in built["snapshots"]]
+        assert times == sorted(times) and len(set(times)) == len(times) >= 2
+        laws = [(f"snapshot {i}", s["law"]) for i, s in enumerate(built["snapshots"])]
+    else:
+        assert set(cfg.endpoints) == {"initial", "final"}
+        laws = [("initial", built["initial"]), ("final", built["final"])]
+    assert all(isinstance(law, Endpoint) for _, law in laws)
+    assert len({law.dim for _, law in laws}) == 1
+    grid = _grid_for(laws[0][1].dim)
+    for name, endpoint in laws:
         m = endpoint.masses(grid, name=name)
         assert m.shape == grid.shape and np.all(m >= 0)
         assert m.sum() == pytest.approx(1.0, abs=1e-14)

@@ -46,6 +46,7 @@ __all__ = [
     "TorchInteraction",
     "confinement_from_name",
     "confinement_names",
+    "formula_numbers",
     "interaction_from_name",
     "interaction_names",
     "resolve_callable",
@@ -253,23 +254,29 @@ class Harmonic(Confinement):
             return arr - np.asarray(self.centre)
         return arr - self.centre
 
+    def formula(self, x: Any, xp: Any, stiffness: Any, centre: Any) -> Any:
+        """stiffness |x - centre|²/2 in the array library ``xp`` (see :func:`formula_numbers`)."""
+        s = x - centre
+        return 0.5 * stiffness * (s * s).sum(-1)
+
     def value(self, x: np.ndarray) -> np.ndarray:
         """stiffness |x - centre|²/2, shape (...)."""
-        s = self._shift(x)
-        return 0.5 * self.stiffness * np.sum(s * s, axis=-1)
+        self._shift(x)  # checks the number of coordinates of a per-axis centre
+        return self.formula(_points(x), np, **formula_numbers(self, np))
 
     def grad(self, x: np.ndarray) -> np.ndarray:
         """stiffness (x - centre), shape (..., d)."""
         return self.stiffness * self._shift(x)
 
 
-def _double_well_value(x: np.ndarray, depth: float, tilt: float, stiffness: float) -> np.ndarray:
+def _double_well_value(x: Any, depth: Any, tilt: Any, stiffness: Any) -> Any:
+    """The double-well formula for numpy arrays or torch tensors."""
     x0 = x[..., 0]
     rest = x[..., 1:]
     return (
         depth * (0.25 * x0**4 - 0.5 * x0**2)
         + tilt * x0
-        + 0.5 * stiffness * np.sum(rest * rest, axis=-1)
+        + 0.5 * stiffness * (rest * rest).sum(-1)
     )
 
 
@@ -299,9 +306,13 @@ class DoubleWell(Confinement):
         object.__setattr__(self, "depth", _finite(self.depth, "DoubleWell depth"))
         object.__setattr__(self, "stiffness", _finite(self.stiffness, "DoubleWell stiffness"))
 
+    def formula(self, x: Any, xp: Any, depth: Any, stiffness: Any) -> Any:
+        """U in the array library ``xp`` (see :func:`formula_numbers`)."""
+        return _double_well_value(x, depth, 0.0, stiffness)
+
     def value(self, x: np.ndarray) -> np.ndarray:
         """U(x), shape (...)."""
-        return _double_well_value(_points(x), self.depth, 0.0, self.stiffness)
+        return self.formula(_points(x), np, **formula_numbers(self, np))
 
     def grad(self, x: np.ndarray) -> np.ndarray:
         """∇U(x), shape (..., d)."""
@@ -327,9 +338,13 @@ class TiltedDoubleWell(Confinement):
         object.__setattr__(self, "tilt", _finite(self.tilt, "TiltedDoubleWell tilt"))
         object.__setattr__(self, "stiffness", _finite(self.stiffness, "TiltedDoubleWell stiffness"))
 
+    def formula(self, x: Any, xp: Any, depth: Any, tilt: Any, stiffness: Any) -> Any:
+        """U in the array library ``xp`` (see :func:`formula_numbers`)."""
+        return _double_well_value(x, depth, tilt, stiffness)
+
     def value(self, x: np.ndarray) -> np.ndarray:
         """U(x), shape (...)."""
-        return _double_well_value(_points(x), self.depth, self.tilt, self.stiffness)
+        return self.formula(_points(x), np, **formula_numbers(self, np))
 
     def grad(self, x: np.ndarray) -> np.ndarray:
         """∇U(x), shape (..., d)."""
@@ -368,10 +383,13 @@ class HarmonicInteraction(Interaction):
     def __post_init__(self) -> None:
         object.__setattr__(self, "strength", _finite(self.strength, "HarmonicInteraction strength"))
 
+    def formula(self, z: Any, xp: Any, strength: Any) -> Any:
+        """W in the array library ``xp`` (see :func:`formula_numbers`)."""
+        return 0.5 * strength * (z * z).sum(-1)
+
     def value(self, z: np.ndarray) -> np.ndarray:
         """W(z), shape (...)."""
-        arr = _points(z, "separations")
-        return 0.5 * self.strength * np.sum(arr * arr, axis=-1)
+        return self.formula(_points(z, "separations"), np, **formula_numbers(self, np))
 
     def grad(self, z: np.ndarray) -> np.ndarray:
         """∇W(z), shape (..., d)."""
@@ -393,10 +411,13 @@ class GaussianCore(Interaction):
         object.__setattr__(self, "strength", _finite(self.strength, "GaussianCore strength"))
         object.__setattr__(self, "range", _positive(self.range, "GaussianCore range"))
 
+    def formula(self, z: Any, xp: Any, strength: Any, range: Any) -> Any:
+        """W in the array library ``xp`` (see :func:`formula_numbers`)."""
+        return strength * xp.exp(-(z * z).sum(-1) / (2.0 * range**2))
+
     def value(self, z: np.ndarray) -> np.ndarray:
         """W(z), shape (...)."""
-        arr = _points(z, "separations")
-        return self.strength * np.exp(-np.sum(arr * arr, axis=-1) / (2.0 * self.range**2))
+        return self.formula(_points(z, "separations"), np, **formula_numbers(self, np))
 
     def grad(self, z: np.ndarray) -> np.ndarray:
         """∇W(z), shape (..., d)."""
@@ -435,11 +456,16 @@ class Morse(Interaction):
         arr = _points(z, "separations")
         return arr, np.sqrt(np.sum(arr * arr, axis=-1) + self.softening**2)
 
+    def formula(self, z: Any, xp: Any, depth: Any, width: Any, distance: Any,
+                softening: Any) -> Any:
+        """W in the array library ``xp`` (see :func:`formula_numbers`)."""
+        r = xp.sqrt((z * z).sum(-1) + softening**2)
+        e = xp.exp(-width * (r - distance))
+        return depth * (e * e - 2.0 * e)
+
     def value(self, z: np.ndarray) -> np.ndarray:
         """W(z), shape (...)."""
-        _, r = self._r(z)
-        e = np.exp(-self.width * (r - self.distance))
-        return self.depth * (e * e - 2.0 * e)
+        return self.formula(_points(z, "separations"), np, **formula_numbers(self, np))
 
     def grad(self, z: np.ndarray) -> np.ndarray:
         """∇W(z), shape (..., d)."""
@@ -467,10 +493,13 @@ class SoftCoulomb(Interaction):
         object.__setattr__(self, "strength", _finite(self.strength, "SoftCoulomb strength"))
         object.__setattr__(self, "softening", _positive(self.softening, "SoftCoulomb softening"))
 
+    def formula(self, z: Any, xp: Any, strength: Any, softening: Any) -> Any:
+        """W in the array library ``xp`` (see :func:`formula_numbers`)."""
+        return strength / xp.sqrt((z * z).sum(-1) + softening**2)
+
     def value(self, z: np.ndarray) -> np.ndarray:
         """W(z), shape (...)."""
-        arr = _points(z, "separations")
-        return self.strength / np.sqrt(np.sum(arr * arr, axis=-1) + self.softening**2)
+        return self.formula(_points(z, "separations"), np, **formula_numbers(self, np))
 
     def grad(self, z: np.ndarray) -> np.ndarray:
         """∇W(z), shape (..., d)."""
@@ -479,146 +508,25 @@ class SoftCoulomb(Interaction):
         return (-self.strength / (s2 * np.sqrt(s2)))[..., None] * arr
 
 
-# --------------------------------------------------------------------------- torch (autograd)
+# --------------------------------------------------------------------------- formulas
 
 
-def _torch_eval(
-    fn: Callable[..., Any], arg: Any, expected_shape: tuple[int, ...], label: str
-) -> Any:
-    """Call a user torch function and check that it returns a float tensor of the right shape."""
-    import torch
+def formula_numbers(potential: Any, xp: Any) -> dict[str, Any]:
+    """The keyword arguments of ``potential.formula``: its dataclass fields (tuples as arrays
+    of the library ``xp``) or its torch ``params``; float64 tensors when ``xp`` is torch.
 
-    try:
-        out = fn(arg)
-    except Exception as exc:  # the user's code failed: say where, keep the cause
-        raise InputError(
-            f"{label} raised {type(exc).__name__}: {exc} (it is called with a float64 torch "
-            f"tensor of shape {tuple(arg.shape)})"
-        ) from exc
-    if not isinstance(out, torch.Tensor):
-        raise InputError(
-            f"{label} must return a torch tensor of shape {expected_shape}, got "
-            f"{type(out).__name__}; use torch operations (torch.exp, ...) rather than numpy"
-        )
-    if tuple(out.shape) != expected_shape:
-        raise InputError(
-            f"{label} must return shape {expected_shape} for an input of shape "
-            f"{tuple(arg.shape)} (one value per point), got {tuple(out.shape)}"
-        )
-    if not out.is_floating_point():
-        raise InputError(f"{label} must return a floating-point tensor, got dtype {out.dtype}")
-    return out.to(torch.float64)
-
-
-def _grad_of(out: Any, inp: Any) -> Any:
-    import torch
-
-    if not out.requires_grad:  # the output does not depend on the input: zero gradient
-        return torch.zeros_like(inp)
-    (g,) = torch.autograd.grad(out.sum(), inp, allow_unused=True)
-    return torch.zeros_like(inp) if g is None else g
-
-
-class TorchConfinement(Confinement):
-    """User confinement U given as a torch function; ∇U by ``torch.autograd`` in float64.
-
-    ``fn`` maps a float64 tensor x of shape (..., d) to U(x) of shape (...); it may be a
-    callable or an import path ``"package.module:function"`` / ``"package.module.function"``.
+    Each built-in potential writes its value once, as ``formula(x, xp, **numbers)`` with
+    operations that numpy arrays and torch tensors share; ``value`` calls it with numpy and
+    :func:`parameter_derivative` with torch tensors (forward-mode autograd).
     """
-
-    name: ClassVar[str] = "torch"
-
-    def __init__(self, fn: Callable[..., Any] | str) -> None:
-        self.fn = resolve_callable(fn, "TorchConfinement fn")
-        self.fn_name = _fn_name(self.fn, fn)
-
-    def value(self, x: np.ndarray) -> np.ndarray:
-        """U(x), shape (...)."""
-        import torch
-
-        arr = _points(x)
-        with torch.no_grad():
-            t = torch.from_numpy(np.array(arr, dtype=np.float64))
-            out = _torch_eval(self.fn, t, arr.shape[:-1], f"TorchConfinement fn {self.fn_name}")
-        return out.detach().numpy().copy()
-
-    def grad(self, x: np.ndarray) -> np.ndarray:
-        """∇U(x) by autograd, shape (..., d)."""
-        import torch
-
-        arr = _points(x)
-        t = torch.from_numpy(np.array(arr, dtype=np.float64)).requires_grad_(True)
-        with torch.enable_grad():
-            out = _torch_eval(self.fn, t, arr.shape[:-1], f"TorchConfinement fn {self.fn_name}")
-            g = _grad_of(out, t)
-        return g.detach().numpy().copy()
-
-    def describe(self) -> dict[str, Any]:
-        """{"name": "torch", "fn": <import path or module:qualname>}."""
-        return {"name": self.name, "fn": self.fn_name}
-
-    def __repr__(self) -> str:
-        return f"TorchConfinement(fn={self.fn_name!r})"
-
-
-class TorchInteraction(Interaction):
-    """User pair potential W given as a torch function; ∇W by ``torch.autograd`` in float64.
-
-    With ``radial=False`` ``fn`` maps separations z (..., d) to W(z) (...) and must itself be
-    even, W(-z) = W(z) (checked on a few points when a problem is built:
-    :mod:`mfbridge.model.potential_checks`).  With ``radial=True`` ``fn`` maps distances
-    r = |z| (...) to W (...), which is even by construction; r is computed so that the
-    gradient at z = 0 is exactly 0 (never NaN) and the value there is fn(0).
-    ``fn`` may be a callable or an import path as for :class:`TorchConfinement`.
-    """
-
-    name: ClassVar[str] = "torch"
-
-    def __init__(self, fn: Callable[..., Any] | str, radial: bool = False) -> None:
-        self.fn = resolve_callable(fn, "TorchInteraction fn")
-        self.fn_name = _fn_name(self.fn, fn)
-        if not isinstance(radial, (bool, np.bool_)):
-            raise InputError(f"TorchInteraction radial must be true or false, got {radial!r}")
-        self.radial = bool(radial)
-
-    def _call(self, t: Any, shape: tuple[int, ...]) -> Any:
-        import torch
-
-        label = f"TorchInteraction fn {self.fn_name}"
-        if not self.radial:
-            return _torch_eval(self.fn, t, shape, label)
-        r2 = (t * t).sum(-1)
-        positive = r2 > 0
-        # double-where: sqrt never sees 0, so d r / d z = z / r is finite and masked to 0 at z = 0
-        r = torch.where(positive, torch.sqrt(torch.where(positive, r2, torch.ones_like(r2))), 0.0)
-        return _torch_eval(self.fn, r, shape, label + " (radial, called with r = |z|)")
-
-    def value(self, z: np.ndarray) -> np.ndarray:
-        """W(z), shape (...)."""
-        import torch
-
-        arr = _points(z, "separations")
-        with torch.no_grad():
-            out = self._call(torch.from_numpy(np.array(arr, dtype=np.float64)), arr.shape[:-1])
-        return out.detach().numpy().copy()
-
-    def grad(self, z: np.ndarray) -> np.ndarray:
-        """∇W(z) by autograd, shape (..., d)."""
-        import torch
-
-        arr = _points(z, "separations")
-        t = torch.from_numpy(np.array(arr, dtype=np.float64)).requires_grad_(True)
-        with torch.enable_grad():
-            out = self._call(t, arr.shape[:-1])
-            g = _grad_of(out, t)
-        return g.detach().numpy().copy()
-
-    def describe(self) -> dict[str, Any]:
-        """{"name": "torch", "fn": <import path or module:qualname>, "radial": bool}."""
-        return {"name": self.name, "fn": self.fn_name, "radial": self.radial}
-
-    def __repr__(self) -> str:
-        return f"TorchInteraction(fn={self.fn_name!r}, radial={self.radial})"
+    if is_dataclass(potential):
+        raw: dict[str, Any] = {f.name: getattr(potential, f.name) for f in fields(potential)}
+    else:  # a torch potential: its named numbers
+        raw = dict(getattr(potential, "params", {}))
+    if xp is np:
+        return {k: np.asarray(v, dtype=float) if isinstance(v, tuple) else v
+                for k, v in raw.items()}
+    return {k: xp.as_tensor(v, dtype=xp.float64) for k, v in raw.items()}
 
 
 # --------------------------------------------------------------------------- registries
@@ -665,3 +573,7 @@ def interaction_from_name(name: str, **params: Any) -> Interaction:
     """Build an interaction from its registry name ("none", "harmonic", "gaussian", "morse",
     "coulomb") and keyword parameters."""
     return _build("interaction", _INTERACTIONS, name, params)
+
+
+# user potentials (torch functions) live in their own module; importable from here as before
+from mfbridge.model.torch_potentials import TorchConfinement, TorchInteraction  # noqa: E402

@@ -388,22 +388,24 @@ def box_from_samples(initial: Endpoint, final: Endpoint, margin: float = 0.2
     3e-7 of its mass; for other endpoints mean ± 6 standard deviations. ``margin`` is a
     fraction ≥ 0.
     """
-    lower, upper, _ = _box_and_widths(initial, final, margin)
+    lower, upper, _ = _box_and_widths({"initial": initial, "final": final}, margin)
     return tuple(float(v) for v in lower), tuple(float(v) for v in upper)
 
 
-def _box_and_widths(initial: Endpoint, final: Endpoint, margin: Any
+def _box_and_widths(laws: dict[str, Any], margin: Any
                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    for label, e in (("initial", initial), ("final", final)):
+    for label, e in laws.items():
         if not isinstance(e, Endpoint):
             raise InputError(f"the automatic box needs mfbridge endpoints; the {label} one is "
                              f"{e!r}")
     fraction = _check_margin(margin)
-    check_same_dimension(initial, final)
-    lo0, hi0, sd0 = _reach(initial)
-    lo1, hi1, sd1 = _reach(final)
-    lo, hi = np.minimum(lo0, lo1), np.maximum(hi0, hi1)
-    positive = [s for s in (sd0, sd1) if np.all(s > 0)]
+    items = list(laws.values())
+    for other in items[1:]:
+        check_same_dimension(items[0], other)
+    reach = [_reach(e) for e in items]
+    lo = np.min([r[0] for r in reach], axis=0)
+    hi = np.max([r[1] for r in reach], axis=0)
+    positive = [r[2] for r in reach if np.all(r[2] > 0)]
     width = np.min(positive, axis=0) if positive else np.zeros_like(lo)
     extent = hi - lo
     flat = np.flatnonzero(extent <= 1e-12 * np.maximum(np.abs(lo), 1.0))
@@ -445,9 +447,9 @@ def outliers(samples: Samples, limit: float = OUTLIER_SDS
     return sorted(found, key=lambda f: -f[3])
 
 
-def _outlier_notes(initial: Endpoint, final: Endpoint, shown: int = 5) -> list[str]:
+def _outlier_notes(laws: dict[str, Any], shown: int = 5) -> list[str]:
     notes = []
-    for name, e in (("initial", initial), ("final", final)):
+    for name, e in laws.items():
         if not isinstance(e, Samples):
             continue
         found = outliers(e)
@@ -463,9 +465,9 @@ def _outlier_notes(initial: Endpoint, final: Endpoint, shown: int = 5) -> list[s
     return notes
 
 
-def _check_resolution(initial: Endpoint, final: Endpoint, grid: Grid, width: np.ndarray,
+def _check_resolution(laws: dict[str, Any], grid: Grid, width: np.ndarray,
                       wanted: np.ndarray | None, cells_per_width: Any) -> None:
-    """Say why the automatic box cannot resolve the endpoints, never cap it silently: outlying
+    """Say why the automatic box cannot resolve the laws (name → endpoint), never cap it silently: outlying
     samples (named) that stretch the box, a kernel narrower than a cell (refused), or a cell
     count capped at :data:`AUTO_CELLS` (a :class:`ResolutionWarning`)."""
     if not np.all(width > 0):
@@ -477,7 +479,7 @@ def _check_resolution(initial: Endpoint, final: Endpoint, grid: Grid, width: np.
         return
     k = int(np.argmin(per_sd))
     box = box_text(grid.lower, grid.upper, ".4g")
-    notes = _outlier_notes(initial, final)
+    notes = _outlier_notes(laws)
     if notes:
         extent = grid.upper[k] - grid.lower[k]
         raise InputError(
@@ -503,9 +505,11 @@ def _check_resolution(initial: Endpoint, final: Endpoint, grid: Grid, width: np.
         f"{need if len(need) > 1 else need[0]} for that resolution"), stacklevel=3)
 
 
-def auto_grid(initial: Endpoint, final: Endpoint, shape: Any = None, margin: float = 0.2,
-              cells_per_width: float = 1.5) -> Grid:
-    """A :class:`Grid` on :func:`box_from_samples` (``initial``, ``final``, ``margin``).
+def auto_grid(initial: Endpoint | None = None, final: Endpoint | None = None, shape: Any = None,
+              margin: float = 0.2, cells_per_width: float = 1.5,
+              snapshots: Any = None) -> Grid:
+    """A :class:`Grid` on :func:`box_from_samples` (``initial``, ``final``, ``margin``), or on
+    the same box around every law of ``snapshots`` (a series: items with a ``law``).
 
     ``shape``: cells per axis (a scalar is used on every axis), or None to choose them: along
     axis k, h_k = s_k / ``cells_per_width`` with s_k the narrower of the two snapshots' kernel
@@ -516,7 +520,13 @@ def auto_grid(initial: Endpoint, final: Endpoint, shape: Any = None, margin: flo
     largest of :data:`AUTO_CELLS` is refused when a kernel is then narrower than a cell, else
     warned about (:class:`~mfbridge.errors.ResolutionWarning`).
     """
-    lower, upper, width = _box_and_widths(initial, final, margin)
+    if snapshots is not None:
+        laws = {f"snapshot {i}": (item["law"] if hasattr(item, "keys")
+                                  else getattr(item, "law", item))
+                for i, item in enumerate(snapshots)}
+    else:
+        laws = {"initial": initial, "final": final}
+    lower, upper, width = _box_and_widths(laws, margin)
     wanted = None
     if shape is None:
         if isinstance(cells_per_width, (bool, np.bool_)) or not isinstance(
@@ -528,5 +538,5 @@ def auto_grid(initial: Endpoint, final: Endpoint, shape: Any = None, margin: flo
         else:
             shape = 64
     grid = Grid(lower=tuple(map(float, lower)), upper=tuple(map(float, upper)), shape=shape)
-    _check_resolution(initial, final, grid, width, wanted, cells_per_width)
+    _check_resolution(laws, grid, width, wanted, cells_per_width)
     return grid

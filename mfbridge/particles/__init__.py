@@ -11,6 +11,7 @@ from mfbridge.particles.simulator import (
     ParticleRun,
     default_substeps,
     mckean_vlasov_flow,
+    population_snapshots,
     sample_particles,
     simulate,
 )
@@ -35,6 +36,7 @@ __all__ = [
     "fit_error_law",
     "mckean_vlasov_flow",
     "moments_of_masses",
+    "population_snapshots",
     "sample_particles",
     "simulate",
     "w1_to_masses",

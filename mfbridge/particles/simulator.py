@@ -54,6 +54,7 @@ are :mod:`mfbridge.particles.statistics`.
 
 from __future__ import annotations
 
+import itertools
 import math
 import time
 from collections.abc import Sequence
@@ -76,6 +77,7 @@ __all__ = [
     "interpolate_field",
     "mckean_vlasov_flow",
     "pair_mode_for",
+    "population_snapshots",
     "prepare_control",
     "sample_particles",
     "simulate",
@@ -330,6 +332,32 @@ def simulate(
         u = _gather(_stencil(grid, x), flat_u[-1])
         cost += np.einsum("nd,nd->n", u, u) * (0.5 * last / (2.0 * noise**2))
     return ParticleRun(np.asarray(record), positions, cost, time.perf_counter() - start)
+
+
+def population_snapshots(x0: np.ndarray, times: Sequence[float], noise: float,
+                         confinement: Confinement, interaction: Interaction, grid: Grid,
+                         dt: float, rng: np.random.Generator) -> np.ndarray:
+    r"""Positions (len(times), N, d) of an uncontrolled interacting population,
+    :math:`dX^i = [-\nabla U(X^i) - \frac1N\sum_j\nabla W(X^i - X^j)]dt + \sigma dB^i`, from
+    ``x0`` (N, d) at ``times[0]``, seen at the increasing ``times`` (synthetic snapshots for
+    fits and tests). Euler–Maruyama with steps of about ``dt`` (each interval between
+    consecutive times is cut into equal steps no longer than ``dt``); pair forces by the grid
+    route on ``grid`` (:class:`PairForce`, cloud-in-cell, error O(h²)); reflecting walls at the
+    grid's box.
+    """
+    times = np.asarray(times, dtype=float)
+    if times.ndim != 1 or times.size < 1 or np.any(np.diff(times) <= 0):
+        raise InputError(f"times must increase strictly, got {times.tolist()}")
+    if not dt > 0:
+        raise InputError(f"dt must be positive, got {dt!r}")
+    nodes, record = [times[:1]], [0]
+    for a, b in itertools.pairwise(times):
+        steps = max(1, math.ceil((b - a) / dt - 1e-9))
+        nodes.append(a + (b - a) * np.arange(1, steps + 1) / steps)
+        record.append(record[-1] + steps)
+    force = PairForce(interaction, grid, mode="grid")
+    run = simulate(grid, np.concatenate(nodes), noise, confinement, force, x0, rng, 1, record)
+    return run.positions
 
 
 def default_substeps(grid: Grid, times: np.ndarray, noise: float, confinement: Confinement,

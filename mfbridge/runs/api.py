@@ -28,6 +28,7 @@ from mfbridge.model.potentials import (
     interaction_from_name,
 )
 from mfbridge.model.problem import BridgeProblem
+from mfbridge.model.series import SeriesProblem
 from mfbridge.particles.statistics import CheckReport
 from mfbridge.particles.statistics import check as particle_check
 from mfbridge.result import (
@@ -39,6 +40,7 @@ from mfbridge.result import (
     read_marker,
 )
 from mfbridge.solvers.fixed_point import Iteration, SolverOptions, solve_bridge
+from mfbridge.solvers.series import SeriesResult, solve_series
 
 CONF_DIR = Path(__file__).resolve().parents[2] / "conf"
 GROUPS = ("grid", "confinement", "interaction", "endpoints", "solver")
@@ -103,34 +105,49 @@ def noise_from_config(noise: Any, diffusion: Any) -> Any:
     return sigma
 
 
-def build_problem(cfg: Any) -> BridgeProblem:
-    """Instantiate the grid, potentials and endpoints of ``cfg`` into a :class:`BridgeProblem`."""
+def build_problem(cfg: Any) -> BridgeProblem | SeriesProblem:
+    """Instantiate the grid, potentials and endpoints of ``cfg`` into a :class:`BridgeProblem`,
+    or into a :class:`~mfbridge.model.series.SeriesProblem` when the endpoints group lists
+    ``snapshots`` (each a ``time`` and a ``law``; ``horizon`` is then not used)."""
     return _problem_and_axes(cfg)[0]
 
 
-def _axis_names(endpoints: dict[str, Any]) -> list[str] | None:
+def _axis_names(laws: list[Any]) -> list[str] | None:
     """Column names of endpoint files with named columns (CSV/TSV, Parquet), else ``None``."""
-    for side in ("initial", "final"):
-        endpoint = endpoints[side]
+    for endpoint in laws:
         if getattr(endpoint, "format", None) in ("csv", "parquet"):
             return list(endpoint.data.labels)
     return None
 
 
 def _check_entries(cfg: Any) -> None:
+    """Refuse a configuration that lacks one of the entries every solve reads."""
     for key in (*GROUPS, "noise", "horizon", "steps"):
         if key not in cfg:
             raise InputError(f"the configuration has no {key!r} entry")
 
 
 def _problem_and_axes(cfg: Any, grid: Grid | None = None
-                      ) -> tuple[BridgeProblem, list[str] | None]:
+                      ) -> tuple[BridgeProblem | SeriesProblem, list[str] | None]:
     """The problem of ``cfg`` (on ``grid`` when it is built already) and the names of its space
     axes (data-file columns) if any."""
     _check_entries(cfg)
     endpoints = _build(cfg, "endpoints")
+    if set(endpoints) == {"snapshots"}:
+        snapshots = list(endpoints["snapshots"])
+        series = SeriesProblem(
+            grid=_build(cfg, "grid") if grid is None else grid,
+            snapshots=snapshots,
+            noise=noise_from_config(cfg.noise, cfg.get("diffusion")),
+            steps=cfg.steps,
+            confinement=_build(cfg, "confinement"),
+            interaction=_build(cfg, "interaction"),
+        )
+        laws = [s["law"] if hasattr(s, "keys") else getattr(s, "law", None) for s in snapshots]
+        return series, _axis_names(laws)
     if set(endpoints) != {"initial", "final"}:
-        raise InputError("the endpoints group must define exactly 'initial' and 'final'")
+        raise InputError("the endpoints group must define exactly 'initial' and 'final', or "
+                         "'snapshots' (a list of time and law)")
     from mfbridge.model.samples import check_same_dimension
 
     check_same_dimension(endpoints["initial"], endpoints["final"])
@@ -144,7 +161,7 @@ def _problem_and_axes(cfg: Any, grid: Grid | None = None
         confinement=_build(cfg, "confinement"),
         interaction=_build(cfg, "interaction"),
     )
-    return problem, _axis_names(endpoints)
+    return problem, _axis_names([endpoints["initial"], endpoints["final"]])
 
 
 def _check_memory(cfg: Any, grid: Grid, options: SolverOptions) -> None:
@@ -156,6 +173,12 @@ def _check_memory(cfg: Any, grid: Grid, options: SolverOptions) -> None:
     from mfbridge.solvers.memory import estimate
 
     steps, horizon = cfg.steps, cfg.horizon
+    snapshots = cfg.endpoints.get("snapshots") if hasattr(cfg.endpoints, "get") else None
+    if snapshots:  # a series: the steps span its times (horizon is not used)
+        times = [s.get("time") if hasattr(s, "get") else None for s in snapshots]
+        if not all(is_real_number(t) for t in times):
+            return
+        horizon = max(times) - min(times)
     noise = noise_from_config(cfg.noise, cfg.get("diffusion"))
     if not (isinstance(steps, int) and not isinstance(steps, bool) and steps >= 1
             and is_real_number(horizon) and horizon > 0 and is_real_number(noise) and noise > 0):
@@ -172,15 +195,20 @@ def _check_memory(cfg: Any, grid: Grid, options: SolverOptions) -> None:
 
 def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
           warm_start: BridgeResult | None = None,
-          direct_callback: Callable[[str, int, float, float], None] | None = None
-          ) -> BridgeResult:
+          direct_callback: Callable[[str, int, float, float], None] | None = None,
+          segment_callback: Callable[[int, Iteration], None] | None = None) -> BridgeResult:
     """Solve the bridge that ``cfg`` (from :func:`compose`) describes; the resolved config is
     stored in the result. ``warm_start``: a result on the same grid and steps that starts the
     fixed-point solver (see :func:`~mfbridge.solvers.fixed_point.solve_bridge`); the config's
     ``warm_start`` entry is read by the command line (:mod:`mfbridge.runs.cli`), not here.
     ``callback`` sees every outer iteration of the fixed-point solvers; ``direct_callback``
     every iteration of the direct solver as ``(kind, iteration, J, largest gradient entry)``
-    with kind ``"Newton"`` or ``"L-BFGS"``."""
+    with kind ``"Newton"`` or ``"L-BFGS"``.
+
+    A series of snapshots is solved segment by segment (:func:`solve_series`, in ``jobs``
+    parallel processes when the config sets ``jobs`` above 1) and returned joined over
+    :math:`[t_0, t_m]`; ``segment_callback(segment, iteration)`` then receives the progress
+    (``callback`` is not used)."""
     from omegaconf import DictConfig, OmegaConf
 
     from mfbridge.runs.config_checks import check_config
@@ -201,6 +229,16 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
         log_unestimated("the direct solver" if type(options).__name__ == "DirectOptions"
                         else f"a grid of type {type(grid).__name__}")
     problem, axes = _problem_and_axes(cfg, grid)
+    if isinstance(problem, SeriesProblem):
+        if not isinstance(options, SolverOptions):
+            raise InputError("a series of snapshots is solved by the fixed-point solver "
+                             "(solver=optimal or solver=frozen)")
+        result = solve_series_jobs(problem, options, warm_start, segment_callback,
+                                   cfg.get("jobs", 1)).joined()
+        result.config = OmegaConf.to_container(cfg, resolve=True)
+        if axes is not None:
+            result.model["axes"] = axes
+        return result
     if type(options).__name__ == "DirectOptions":
         from mfbridge.solvers.direct import DirectOptions, solve_direct
 
@@ -243,6 +281,40 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
     if axes is not None:
         result.model["axes"] = axes  # figures label the axes with the data files' columns
     return result
+
+
+def solve_series_jobs(problem: SeriesProblem, options: SolverOptions,
+                      warm_start: Any, callback: Callable[[int, Iteration], None] | None,
+                      jobs: Any) -> SeriesResult:
+    """:func:`~mfbridge.solvers.series.solve_series` with its segments spread over ``jobs``
+    processes (1: in this process, with progress; ``auto``: one per segment up to the cores)."""
+    jobs = parallel_jobs(jobs, len(problem.snapshots) - 1)
+    if jobs == 1:
+        return solve_series(problem, options, warm_start, callback)
+    with process_pool(jobs) as pool:
+        return solve_series(problem, options, warm_start, callback, executor=pool)
+
+
+def parallel_jobs(jobs: Any, tasks: int) -> int:
+    """The number of processes for ``tasks`` independent solves: ``jobs`` (a positive integer,
+    or ``auto``: one per task up to the cores), never more than ``tasks``."""
+    if jobs == "auto" or jobs is None:
+        return max(1, min(tasks, os.cpu_count() or 1))
+    if isinstance(jobs, bool) or not isinstance(jobs, int) or jobs < 1:
+        raise InputError(f"jobs must be a positive integer or auto, got {jobs!r}")
+    return max(1, min(jobs, tasks))
+
+
+def process_pool(jobs: int) -> Any:
+    """A pool of ``jobs`` worker processes, forked from a server process that imported the
+    solvers once (no state of this process, such as its threads, is copied; each solve caps BLAS
+    at one thread itself)."""
+    import multiprocessing
+    from concurrent.futures import ProcessPoolExecutor
+
+    context = multiprocessing.get_context("forkserver")
+    context.set_forkserver_preload(["mfbridge.solvers.series"])
+    return ProcessPoolExecutor(max_workers=jobs, mp_context=context)
 
 
 def load(directory: str | os.PathLike[str], *, warn: bool = True) -> BridgeResult:

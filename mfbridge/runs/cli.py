@@ -85,6 +85,14 @@ class _DirectProgress:
                  kind, it, cost, grad, now - self.start)
 
 
+def _segment_progress(segment: int, it: Iteration) -> None:
+    log.info(
+        "segment %d, outer iteration %3d: residual %.2e, marginal error %.2e, Sinkhorn %d it, "
+        "%.2f s", segment, it.iteration, it.residual, it.marginal_error, it.sinkhorn_iterations,
+        it.seconds,
+    )
+
+
 def _multirun() -> Any:
     """Hydra's config of the running job when it is a job of a multirun, else ``None``."""
     try:
@@ -228,7 +236,8 @@ def _compute(cfg: Any, config: dict[str, Any], out: Path,
         with threadpool_limits(limits=1):
             quiet = cfg.get("progress", True) is False
             result = solve(cfg, callback=None if quiet else _progress, warm_start=warm,
-                           direct_callback=None if quiet else _DirectProgress())
+                           direct_callback=None if quiet else _DirectProgress(),
+                           segment_callback=None if quiet else _segment_progress)
             result.save(out, marker=False)
         _report(result)
         record.status, record.finished = result.status, records.now()
@@ -260,8 +269,12 @@ def _report(result: BridgeResult) -> None:
     log.log(level, "%s", result.message)
     cost = "cost J" if result.converged else f"cost J of the {result.status.replace('_', ' ')} " \
                                             "iterate (not a bridge's)"
-    log.log(level, "%s = %.8g  (kinetic %.6g, drift %.6g, free-energy change %.6g)", cost,
-            result.cost, result.cost_kinetic, result.cost_drift, result.cost_free_energy)
+    for k, seg in enumerate(result.segments):
+        log.log(level, "segment %d [%g, %g]: J = %.8g (%s)", k, seg.start, seg.end, seg.cost,
+                seg.status.replace("_", " "))
+    log.log(level, "%s = %.8g  (kinetic %.6g, drift %.6g, free-energy change %.6g)%s", cost,
+            result.cost, result.cost_kinetic, result.cost_drift, result.cost_free_energy,
+            f", summed over {len(result.segments)} segments" if result.segments else "")
     for alt in result.alternatives:
         log.warning("another bridge (start %s, %s): cost J = %.8g, max L1 distance "
                     "%.3g to the returned one, mean at T/2 %s", alt.start,
@@ -310,6 +323,8 @@ SUBCOMMANDS: dict[str, str] = {
     "check": "mfbridge.runs.commands.check",
     "replay": "mfbridge.runs.commands.replay",
     "collect": "mfbridge.runs.commands.collect",
+    "fit": "mfbridge.runs.commands.fit",
+    "compare": "mfbridge.runs.commands.compare",
 }
 # the process that runs main(); a sweep's worker processes import this module but are not it
 _MAIN_PID: int | None = None

@@ -22,7 +22,8 @@ SETTINGS: dict[str, str] = {
     "diffusion": "or the diffusion coefficient D = σ²/2 instead (length²/time): noise=null "
                  "diffusion=D",
     "horizon": "time T between the two observations (time)",
-    "steps": "number K of time steps on [0, T]",
+    "steps": "number K of time steps on [0, T] (a series: over [t_0, t_m], shared by duration)",
+    "jobs": "processes solving the segments of a series of snapshots in parallel (auto or N)",
     "figures": "write figures into the run folder (true/false)",
     "density_scale": "colour scale of density figures: auto, linear or log",
     "warm_start": "auto, nearest, none or a run folder to start the solver from",
@@ -36,7 +37,10 @@ SUBCOMMANDS: tuple[tuple[str, str], ...] = (
     ("mfbridge check RUN_DIR", "drive N particles with a run's control and compare"),
     ("mfbridge collect SWEEP_DIR", "table, combined dataset and figures of a sweep"),
     ("mfbridge replay RUN_DIR", "solve a recorded run again and compare with it"),
-    ("mfbridge SUBCOMMAND --help", "options of check, collect, replay"),
+    ("mfbridge fit --param NAME=LO:HI -N N --out DIR [OVERRIDE ...]",
+     "fit model parameters to snapshots (estimate, intervals, profiles)"),
+    ("mfbridge compare FIT_DIR FIT_DIR ...", "rank fitted models by N·ΣJ, likelihood ratios"),
+    ("mfbridge SUBCOMMAND --help", "options of check, collect, replay, fit, compare"),
     ("mfbridge --cfg job [OVERRIDE ...]", "print the composed configuration, solve nothing"),
     ("mfbridge --version", "versions of mfbridge and of the packages it records"),
 )

@@ -68,6 +68,19 @@ def _density_label(norm: matplotlib.colors.Normalize, result: BridgeResult) -> s
     return f"density ρ ({unit}){log}"
 
 
+def snapshot_times(result: BridgeResult) -> list[float]:
+    """The observation times of a bridge: its two ends, or every snapshot of a series."""
+    if result.segments:
+        return [seg.start for seg in result.segments] + [result.segments[-1].end]
+    return [float(result.times[0]), float(result.times[-1])]
+
+
+def _mark_snapshots(ax: plt.Axes, result: BridgeResult, colour: str) -> None:
+    """Dotted vertical lines at the inner snapshot times of a series (nothing for two)."""
+    for i, t in enumerate(snapshot_times(result)[1:-1]):
+        ax.axvline(t, color=colour, ls=":", lw=1.2, label="snapshot" if i == 0 else None)
+
+
 def plot_density_1d(result: BridgeResult, path: Path, scale: str = "auto") -> Path:
     """Heat map of ρ(t, x) with the observed μ and ν drawn beside it, and the mean ± std;
     ``scale``: ``linear``, ``log`` or ``auto`` (see :func:`_norm`)."""
@@ -85,11 +98,13 @@ def plot_density_1d(result: BridgeResult, path: Path, scale: str = "auto") -> Pa
     ax.plot(t, mean, color="white", lw=1.5, label="mean")
     ax.plot(t, mean + std, color="white", lw=0.8, ls="--", label="mean ± std")
     ax.plot(t, mean - std, color="white", lw=0.8, ls="--")
+    _mark_snapshots(ax, result, "white")
     ax.set_xlabel("time t")
     ax.set_title(_title(result), fontsize=10)
     ax.legend(loc="upper left", fontsize=8, framealpha=0.4)
     log = isinstance(norm, matplotlib.colors.LogNorm)
-    for axis, k, label in ((ax_mu, 0, "μ (t = 0)"), (ax_nu, -1, "ν (t = T)")):
+    first, last = snapshot_times(result)[0], snapshot_times(result)[-1]
+    for axis, k, label in ((ax_mu, 0, f"μ (t = {first:g})"), (ax_nu, -1, f"ν (t = {last:g})")):
         axis.fill_betweenx(x, result.density[k], color="tab:orange", alpha=0.6)
         axis.set_xlabel(f"{label}\ndensity")
         if log:
@@ -106,7 +121,10 @@ def plot_density_1d(result: BridgeResult, path: Path, scale: str = "auto") -> Pa
 
 
 def _snapshots(result: BridgeResult, count: int) -> np.ndarray:
-    """Indices of ``count`` evenly spaced time nodes (first and last included)."""
+    """Indices of ``count`` evenly spaced time nodes (first and last included); for a series,
+    the snapshot times."""
+    if result.segments:
+        return np.array([seg.first for seg in result.segments] + [len(result.times) - 1])
     return np.unique(np.linspace(0, len(result.times) - 1, count).round().astype(int))
 
 
@@ -225,10 +243,12 @@ def plot_moments(result: BridgeResult, path: Path) -> Path:
         line, = ax.plot(t, mean, label=f"mean of {names[a]}")
         ax.fill_between(t, mean - std, mean + std, color=line.get_color(), alpha=0.25,
                         label=f"± std of {names[a]}")
+    _mark_snapshots(ax, result, "grey")
     ax.set_xlabel("time t")
     ax.set_ylabel("position (mean ± std)")
     ax.legend(fontsize=8)
     ax_f.plot(t, result.free_energy)
+    _mark_snapshots(ax_f, result, "grey")
     ax_f.set_xlabel("time t")
     ax_f.set_ylabel("free energy F(ρ_t)")
     fig.suptitle(_title(result), fontsize=10)
