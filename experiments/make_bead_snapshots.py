@@ -16,20 +16,21 @@ stiffness + strength/range² ≈ 10 /s, so L·δ ≈ 0.005 (a 0.25% bias in vari
 of :mod:`mfbridge.particles`). Pair forces by the grid route on 4096 cells over [-5, 5] µm
 (h ≈ 0.0024 µm, error O(h²)). Files ``beads_t0.csv``, ``beads_t1.csv``, ``beads_t2.csv`` with
 one column ``x_um``. Seeded: the files are the same on every run.
-Run: ``python experiments/make_bead_snapshots.py``.
+Run: ``python experiments/make_bead_snapshots.py`` (writes to experiments/out/examples/data;
+``--update-committed`` rewrites the files in examples/data).
 """
 
 from __future__ import annotations
 
-from pathlib import Path
+import argparse
 
 import numpy as np
+from study_common import ROOT, add_output_flag, output_dir
 
 from mfbridge.model.grid import Grid
 from mfbridge.model.potentials import GaussianCore, Harmonic
 from mfbridge.particles import population_snapshots
 
-OUT = Path(__file__).resolve().parent.parent / "examples" / "data"
 SEED = 16
 N = 8000
 TIMES = (0.0, 0.3, 1.0)
@@ -55,10 +56,14 @@ HEADER = ("# INVENTED demo data of mfbridge (not a measurement): beads released 
 
 
 def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    add_output_flag(parser)
+    parser.parse_args()
+    out = output_dir(ROOT / "examples" / "data")
     positions = simulate_snapshots(N, SEED)
-    OUT.mkdir(parents=True, exist_ok=True)
+    out.mkdir(parents=True, exist_ok=True)
     for k, t in enumerate(TIMES):
-        path = OUT / f"beads_t{k}.csv"
+        path = out / f"beads_t{k}.csv"
         lines = [HEADER.format(t=t).rstrip("\n"), "x_um"]
         lines += [f"{x:.5f}" for x in positions[k, :, 0]]
         path.write_text("\n".join(lines) + "\n")

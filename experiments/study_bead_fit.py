@@ -12,19 +12,20 @@ models, and the models are compared (``mfbridge compare``):
 
 Then the Gaussian-core model is fitted once more with Scott's bandwidth for the snapshot
 densities instead of the small 0.04 µm kernel, to show the smoothing bias. Writes
-``experiments/reports/bead_fit.md`` and its figures; the fit folders go to the git-ignored
-``experiments/runs/bead_fit/``. About 15-30 minutes on 2 cores.
+``bead_fit.md`` and its figures into experiments/out/reports/ (experiments/reports/ with
+--update-committed); the fit folders go to the git-ignored ``experiments/runs/bead_fit/``.
 
-    python experiments/study_bead_fit.py
+    python experiments/study_bead_fit.py [--update-committed] [--quiet]
 """
 
 from __future__ import annotations
 
+import argparse
 import json
 import shutil
 import time
 
-from study_common import FIGURE_DIR, REPORT_DIR, ROOT, mfbridge
+from study_common import FIGURE_DIR, REPORT_DIR, ROOT, add_output_flag, mfbridge
 
 RUNS = ROOT / "experiments" / "runs" / "bead_fit"
 REPORT = REPORT_DIR / "bead_fit.md"
@@ -85,6 +86,10 @@ def interval_table(record: dict) -> list[str]:
 
 
 def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    add_output_flag(parser)
+    parser.add_argument("--quiet", action="store_true", help="do not echo the fits' output")
+    parser.parse_args()
     RUNS.mkdir(parents=True, exist_ok=True)
     FIGURE_DIR.mkdir(parents=True, exist_ok=True)
     records, seconds, logs = {}, {}, {}

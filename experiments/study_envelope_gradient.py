@@ -11,17 +11,19 @@ For each grid (cells n, steps K) the bridge is solved at θ and at θ ± δ for 
 
 Expected: the first gap shrinks with h (J and J_chain differ by O(h²), so the flow is not
 stationary for the reported J), the second only with Δt (the time scheme makes the fixed point
-stationary for J_chain to O(Δt²)). Writes experiments/results/envelope_gradient.md.
+stationary for J_chain to O(Δt²)). Writes envelope_gradient.md into experiments/out/results/
+(experiments/results/ with --update-committed).
 
-    python experiments/study_envelope_gradient.py
+    python experiments/study_envelope_gradient.py [--update-committed]
 """
 
 from __future__ import annotations
 
+import argparse
 import time
-from pathlib import Path
 
 import numpy as np
+from study_common import ROOT, add_output_flag, output_dir
 
 from mfbridge.model.endpoints import Gaussian
 from mfbridge.model.grid import Grid
@@ -38,7 +40,7 @@ from mfbridge.numerics.reference import (
 from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
 from mfbridge.solvers.sensitivity import cost_gradient
 
-OUT = Path(__file__).resolve().parent / "results" / "envelope_gradient.md"
+OUT = output_dir(ROOT / "experiments" / "results") / "envelope_gradient.md"
 NAMES = ("confinement.stiffness", "interaction.strength", "interaction.range", "noise")
 OPTIONS = SolverOptions()
 DELTA = 1e-3
@@ -104,6 +106,9 @@ def chain_rate(prob: BridgeProblem, result, names=()) -> tuple[float, dict[str, 
 
 
 def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    add_output_flag(parser)
+    parser.parse_args()
     rows = []
     for n, steps in LADDER:
         start = time.perf_counter()
@@ -148,6 +153,7 @@ def main() -> None:
         "time-continuous chain functional): that gap does not change with the cell size and "
         "falls like Δt².",
     ]
+    OUT.parent.mkdir(parents=True, exist_ok=True)
     OUT.write_text("\n".join(lines) + "\n")
     print("\n".join(lines))
 

@@ -13,7 +13,8 @@ same in 2D (a swarm in a round trap) with the small kernel.
 
     python experiments/study_fit_coverage.py [--seeds 20] [--population 5000]
 
-Writes experiments/results/fit_coverage.md. About 20 s per fit on 2 cores (1D).
+Writes fit_coverage.md into experiments/out/results/ (experiments/results/ with
+--update-committed).
 """
 
 from __future__ import annotations
@@ -26,6 +27,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from study_common import ROOT, add_output_flag, output_dir
 
 from mfbridge.model.grid import Grid
 from mfbridge.model.potentials import GaussianCore, Harmonic
@@ -34,7 +36,7 @@ from mfbridge.model.series import SeriesProblem, Snapshot
 from mfbridge.particles import population_snapshots
 from mfbridge.solvers.fit import FitOptions, FitParameter, fit_series
 
-OUT = Path(__file__).resolve().parent / "results" / "fit_coverage.md"
+OUT = output_dir(ROOT / "experiments" / "results") / "fit_coverage.md"
 TIMES = (0.0, 0.3, 1.0)
 NOISE = 0.5
 STRENGTH = 1.5
@@ -56,11 +58,11 @@ class Case:
     estimates: tuple[tuple[str, object], ...]
 
 
-CASE_1D = Case(1, (-1.0,), 0.15, 0.4, Grid(-5.0, 5.0, 4096), 128, 60,
+CASE_1D = Case(1, (-1.0,), 0.15, 0.4, Grid(-5.0, 5.0, 4096), 192, 60,
                (("kernel 0.04", ("kde", 0.04)), ("Scott", ("kde", "scott")),
                 ("histogram", ("histogram", "scott"))))
-CASE_2D = Case(2, (-0.8, 0.0), 0.25, 0.5, Grid((-5.0, -5.0), (5.0, 5.0), (256, 256)), 32, 20,
-               (("kernel 0.1", ("kde", 0.1)),))
+CASE_2D = Case(2, (-0.8, 0.0), 0.35, 0.5, Grid((-5.0, -5.0), (5.0, 5.0), (256, 256)), 64, 20,
+               (("kernel 0.08", ("kde", 0.08)),))
 
 
 def snapshots(case: Case, population: int, seed: int) -> np.ndarray:
@@ -81,9 +83,10 @@ def fit_strength(case: Case, positions: np.ndarray, method: str, bandwidth: obje
         path = folder / f"snapshot_{k}.npy"
         np.save(path, positions[k])
         laws.append(Snapshot(t, Samples(path, bandwidth=bandwidth, method=method)))
-    # the same box for every estimate: fitted to the kernel-0.04 reach of the data
+    # the same box for every estimate: fitted to the reach of the data with the first kernel
+    kernel = case.estimates[0][1][1]
     box = auto_grid(snapshots=[Snapshot(t, Samples(folder / f"snapshot_{k}.npy",
-                                                   bandwidth=0.04))
+                                                   bandwidth=kernel))
                                for k, t in enumerate(TIMES)], shape=case.cells, margin=0.1)
     problem = SeriesProblem(grid=box, snapshots=laws, noise=NOISE, steps=case.steps,
                             confinement=CONFINEMENT,
@@ -129,6 +132,7 @@ def main() -> None:
     parser.add_argument("--seeds", type=int, default=20)
     parser.add_argument("--population", type=int, default=5000)
     parser.add_argument("--seeds-2d", type=int, default=None)
+    add_output_flag(parser)
     args = parser.parse_args()
     start = time.perf_counter()
     one = study(CASE_1D, range(args.seeds), args.population)
@@ -147,13 +151,14 @@ def main() -> None:
         "",
         *coverage_rows(one),
         "",
-        f"2D (a swarm: start N((−0.8, 0), 0.25² I), round trap stiffness 1, core range 0.5, "
+        f"2D (a swarm: start N((−0.8, 0), 0.35² I), round trap stiffness 1, core range 0.5, "
         f"σ = 0.5; {CASE_2D.cells}×{CASE_2D.cells} cells, {CASE_2D.steps} steps):",
         "",
         *coverage_rows(two),
         "",
         f"{time.perf_counter() - start:.0f} s in all.",
     ]
+    OUT.parent.mkdir(parents=True, exist_ok=True)
     OUT.write_text("\n".join(lines) + "\n")
     print("\n".join(lines))
 

@@ -21,7 +21,8 @@ from mfbridge.runs.commands import compare as compare_command
 from mfbridge.runs.commands import fit as fit_command
 from mfbridge.runs.commands import replay
 from mfbridge.solvers import fit as fit_module
-from mfbridge.solvers.fit import FitOptions, FitParameter, FitSummary, compare_models, fit_series
+from mfbridge.solvers.comparison import FitSummary, compare_models
+from mfbridge.solvers.fit import FitOptions, FitParameter, fit_series
 from mfbridge.solvers.linear_quadratic import lq_bridge
 
 SIGMA = 0.8

@@ -83,8 +83,13 @@ def mfbridge_overrides(command: str) -> list[str] | None:
     if not words or Path(words[0]).name != "mfbridge":
         return None
     words = words[1:]
-    if words[:1] and words[0] in ("check", "collect", "replay", "--help", "--version"):
+    if words[:1] and words[0] in ("check", "collect", "replay", "compare", "--help",
+                                  "--version"):
         return None
+    if words[:1] == ["fit"]:  # a fit's overrides are its positional arguments
+        from mfbridge.runs.commands.fit import _parser
+
+        return [w for w in _parser().parse_args(words[1:]).overrides if not w.startswith("hydra.")]
     if "-m" in words or "--multirun" in words:
         words = [w for w in words if w not in ("-m", "--multirun")]
         words = [w if w.startswith("hydra.") else w.split(",")[0] for w in words]

@@ -236,6 +236,10 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
         result = solve_series_jobs(problem, options, warm_start, segment_callback,
                                    cfg.get("jobs", 1)).joined()
         result.config = OmegaConf.to_container(cfg, resolve=True)
+        result.stopping = {"quantity": "self-consistency residual and marginal error of every "
+                                       "segment (both below tol)",
+                           "value": max(result.residual, result.marginal_error),
+                           "tolerance": options.tol}
         if axes is not None:
             result.model["axes"] = axes
         return result

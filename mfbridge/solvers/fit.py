@@ -36,7 +36,7 @@ from __future__ import annotations
 import math
 import time
 import warnings
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Sequence
 from concurrent.futures import Executor
 from dataclasses import dataclass, field
 from typing import Any
@@ -48,12 +48,13 @@ import scipy.stats
 from mfbridge.errors import ConvergenceWarning, InputError, is_real_number
 from mfbridge.model.parameters import check_names, numeric_parameters, with_parameters
 from mfbridge.model.series import SeriesProblem
+from mfbridge.solvers.comparison import FitSummary
 from mfbridge.solvers.fixed_point import SolverOptions
 from mfbridge.solvers.sensitivity import cost_gradient
 from mfbridge.solvers.series import SeriesResult, solve_series
 
-__all__ = ["Evaluation", "FitOptions", "FitParameter", "FitResult", "FitSummary", "Interval",
-           "ModelComparison", "Profile", "compare_models", "fit_series"]
+__all__ = ["Evaluation", "FitOptions", "FitParameter", "FitResult", "Interval", "Profile",
+           "fit_series"]
 
 
 
@@ -604,75 +605,3 @@ def fit_series(
         profiles=profiles, evaluations=evaluator.evaluations, bridge=bridge,
         optimizer=optimizer, seconds=time.perf_counter() - start, level=options.level,
     )
-
-
-# --------------------------------------------------------------------------- model comparison
-
-
-@dataclass(frozen=True)
-class FitSummary:
-    """A fitted model as a comparison sees it: N, ΣJ(θ̂), the number of fitted parameters, the
-    fit's status and the snapshot times."""
-
-    population: int
-    cost: float
-    parameters: int
-    status: str
-    times: tuple[float, ...]
-
-    @property
-    def neg_log_likelihood(self) -> float:
-        return self.population * self.cost
-
-
-@dataclass
-class ModelComparison:
-    """Fitted models on the same snapshots, ranked by N·ΣJ at their optima.
-
-    ``rows``: per model its label, number of fitted parameters, N·ΣJ(θ̂), the difference Δ from
-    the best and the implied likelihood ratio exp(Δ) of the best against it; ``population``: N.
-    """
-
-    population: int
-    rows: list[dict[str, Any]]
-    caution: str
-
-
-CAUTION = (
-    "N·ΣJ is minus the leading-order (large-deviation) log-likelihood: the ratios exp(Δ) ignore "
-    "prefactors of order one and the discretisation error of J, and hold for the whole "
-    "population observed at every time. Compare models fitted on the same snapshots, grid and "
-    "steps; a model with more parameters fits at least as well, so weigh Δ against the extra "
-    "parameters (for nested models 2Δ is approximately χ² with that many degrees of freedom)."
-)
-
-
-def compare_models(models: Mapping[str, FitResult | FitSummary]) -> ModelComparison:
-    """Rank fitted models (label → :class:`FitResult` or :class:`FitSummary`) by N·ΣJ at their
-    optima; all must share N and the snapshot times."""
-    if len(models) < 2:
-        raise InputError(f"compare at least two fitted models, got {len(models)}")
-    fits = {label: m.summary() if isinstance(m, FitResult) else m for label, m in models.items()}
-    pops = {label: f.population for label, f in fits.items()}
-    if len(set(pops.values())) != 1:
-        raise InputError(f"the models were fitted with different population sizes N {pops}; "
-                         "fit them on the same snapshots with the same N")
-    times = {label: tuple(np.round(f.times, 12)) for label, f in fits.items()}
-    if len(set(times.values())) != 1:
-        raise InputError(f"the models were fitted on snapshots at different times {times}")
-    population = next(iter(pops.values()))
-    best = min(f.neg_log_likelihood for f in fits.values())
-    rows = []
-    for label, f in sorted(fits.items(), key=lambda kv: kv[1].neg_log_likelihood):
-        delta = f.neg_log_likelihood - best
-        rows.append({"model": label, "parameters": f.parameters,
-                     "N_sum_J": f.neg_log_likelihood, "sum_J": f.cost, "delta": delta,
-                     "likelihood_ratio": math.exp(delta) if delta < 700 else math.inf,
-                     "status": f.status})
-    largest = max(rows, key=lambda r: r["parameters"])
-    for row in rows:
-        extra = largest["parameters"] - row["parameters"]
-        stat = 2.0 * (row["N_sum_J"] - largest["N_sum_J"])
-        row["wilks_p_value"] = (float(scipy.stats.chi2.sf(max(stat, 0.0), extra))
-                                if extra > 0 else math.nan)
-    return ModelComparison(population=population, rows=rows, caution=CAUTION)
