@@ -32,7 +32,6 @@ from typing import Any
 import numpy as np
 
 from mfbridge.errors import InputError
-from mfbridge.model.parameters import numeric_parameters
 from mfbridge.model.problem import BridgeProblem
 from mfbridge.model.series import SeriesProblem, Snapshot
 from mfbridge.runs.api import build_problem, compose, parallel_jobs, process_pool
@@ -178,10 +177,14 @@ def fit(config: Any, parameters: Sequence[FitParameter | str] | Mapping[str, Any
     n_jobs = parallel_jobs(cfg.get("jobs", 1) if jobs is None else jobs,
                            len(problem.snapshots) - 1)
     folder = None if out is None else Path(out)
-    handler = None
+    handler, lock = None, None
     if folder is not None:
+        from mfbridge.runs.lock import RunLock
+
+        check_fit_folder(folder)
         folder.mkdir(parents=True, exist_ok=True)
-        (folder / FIT_FILE).unlink(missing_ok=True)
+        lock = RunLock(folder).acquire()
+        check_fit_folder(folder)  # again with the lock held: no other fit started meanwhile
         handler = logging.FileHandler(folder / LOG_FILE, mode="w")
         handler.setFormatter(logging.Formatter("[%(asctime)s] %(message)s"))
         log.addHandler(handler)
@@ -207,7 +210,36 @@ def fit(config: Any, parameters: Sequence[FitParameter | str] | Mapping[str, Any
         if handler is not None:
             log.removeHandler(handler)
             handler.close()
+        if lock is not None:
+            lock.release()
     return result
+
+
+def check_fit_folder(folder: str | Path) -> None:
+    """Refuse (:class:`~mfbridge.runs.folders.RunFolderError`, before any solve) a fit folder
+    that must not be written: one that cannot be a folder, one holding a finished fit
+    (``fit.json``), one holding anything but the files of a fit stopped before its bridge was
+    written (that one is simply computed again)."""
+    from mfbridge.runs.folders import RunFolderError, check_output_path
+    from mfbridge.runs.lock import LOCK_FILE
+
+    path = Path(folder)
+    check_output_path(path)
+    if not path.exists():
+        return
+    entries = {p.name for p in path.iterdir()}
+    advice = "choose another --out folder or delete it"
+    if FIT_FILE in entries:
+        raise RunFolderError(f"{path} holds a finished fit ({FIT_FILE}); mfbridge does not "
+                             f"overwrite it: {advice}")
+    ours = {EVALUATIONS_FILE, INTERVALS_FILE, PROFILES_FILE, PROFILE_FIGURE, LOG_FILE,
+            LOCK_FILE} | {f".{name}.tmp" for name in (EVALUATIONS_FILE, INTERVALS_FILE,
+                                                      PROFILES_FILE, FIT_FILE)}
+    others = sorted(entries - ours)
+    if others:
+        raise RunFolderError(f"{path} holds {', '.join(others[:5])}"
+                             f"{' ...' if len(others) > 5 else ''}: not an unfinished fit "
+                             f"folder, and mfbridge does not write into it: {advice}")
 
 
 def _parameters(parameters: Any) -> list[FitParameter]:

@@ -80,8 +80,11 @@ class FitOptions:
     * ``precision``: the statistic 2N·ΣJ is wanted to this absolute precision: the search
       stops when an iteration lowers it by less than a tenth of it, a profile's
       re-minimisation when by less than it (L-BFGS-B's ``ftol``, scaled by ΣJ at the start);
-      ``gtol``: or when every scaled gradient component (∂ΣJ/∂x, x = θ scaled to [0, 1] by the
-      bounds) is below it;
+      ``gtol``: or when every scaled gradient component (∂ΣJ/∂x, x = θ in units of
+      ``first_step`` times its bound width) is below it;
+    * ``first_step``: the search's first step moves each parameter by at most this fraction of
+      its bound width (L-BFGS-B's first step has unit length in its coordinates; 1 would jump
+      to a bound, where a solve may be slow or hard);
     * ``level``: confidence level of the intervals (0.95);
     * ``profile_offsets``: profile points at θ̂_i + c·se_i for these c (se_i: the Hessian's
       standard error), clipped to the bounds; ``profile``: compute profiles at all;
@@ -94,6 +97,7 @@ class FitOptions:
     max_evaluations: int = 60
     precision: float = 1e-3
     gtol: float = 1e-6
+    first_step: float = 0.1
     level: float = 0.95
     profile: bool = True
     profile_offsets: tuple[float, ...] = (-3.0, -2.0, -1.0, 1.0, 2.0, 3.0)
@@ -107,6 +111,7 @@ class FitOptions:
             ("max_evaluations", isinstance(self.max_evaluations, int)
              and self.max_evaluations >= 1),
             ("gtol", is_real_number(self.gtol) and self.gtol > 0),
+            ("first_step", is_real_number(self.first_step) and 0 < self.first_step <= 1),
             ("precision", is_real_number(self.precision) and self.precision > 0),
             ("level", is_real_number(self.level) and 0 < self.level < 1),
             ("hessian_step", is_real_number(self.hessian_step) and 0 < self.hessian_step < 0.5),
@@ -282,11 +287,23 @@ class _Evaluator:
         self.last: SeriesResult | None = None
         self.best: tuple[float, tuple[float, ...], SeriesResult] | None = None
 
+    @property
+    def unit(self) -> np.ndarray:
+        """θ per unit of the search coordinate x: ``first_step`` of each bound width (L-BFGS-B's
+        first step has unit length in x)."""
+        return self.options.first_step * self.width
+
+    @property
+    def span(self) -> float:
+        """The upper bound of x (its lower bound is 0)."""
+        return 1.0 / self.options.first_step
+
     def theta(self, x: np.ndarray) -> np.ndarray:
-        return self.lower + np.clip(x, 0.0, 1.0) * self.width
+        return np.minimum(self.lower + np.clip(x, 0.0, self.span) * self.unit,
+                          self.lower + self.width)
 
     def scaled(self, theta: np.ndarray) -> np.ndarray:
-        return (np.asarray(theta) - self.lower) / self.width
+        return (np.asarray(theta) - self.lower) / self.unit
 
     def solve(self, theta: np.ndarray) -> SeriesResult:
         values = dict(zip(self.names, map(float, theta), strict=True))
@@ -329,11 +346,11 @@ class _Evaluator:
         return ev
 
     def scaled_objective(self, kind: str) -> Callable[[np.ndarray], tuple[float, np.ndarray]]:
-        """ΣJ and its gradient in the coordinates x = (θ − lower)/(upper − lower)."""
+        """ΣJ and its gradient in the coordinates x = (θ − lower)/unit."""
 
         def fun(x: np.ndarray) -> tuple[float, np.ndarray]:
             ev = self(self.theta(np.asarray(x)), kind)
-            return ev.cost, self.gradient_vector(ev) * self.width
+            return ev.cost, self.gradient_vector(ev) * self.unit
 
         return fun
 
@@ -342,10 +359,11 @@ class _Evaluator:
 
 
 def _minimise(fun: Callable[[np.ndarray], tuple[float, np.ndarray]], x0: np.ndarray,
-              max_evaluations: int, gtol: float, ftol: float) -> scipy.optimize.OptimizeResult:
+              span: float, max_evaluations: int, gtol: float, ftol: float
+              ) -> scipy.optimize.OptimizeResult:
     return scipy.optimize.minimize(
-        fun, np.clip(x0, 0.0, 1.0), jac=True, method="L-BFGS-B",
-        bounds=[(0.0, 1.0)] * len(x0),
+        fun, np.clip(x0, 0.0, span), jac=True, method="L-BFGS-B",
+        bounds=[(0.0, span)] * len(x0),
         options={"maxfun": max_evaluations, "gtol": gtol, "ftol": ftol, "maxls": 20},
     )
 
@@ -540,8 +558,8 @@ def fit_series(
     x0 = evaluator.scaled(np.array([p.initial for p in params]))
     first = evaluator(evaluator.theta(x0), "search")
     ftol = 0.1 * options.precision / (2.0 * population * max(abs(first.cost), 1.0))
-    out = _minimise(evaluator.scaled_objective("search"), x0, options.max_evaluations,
-                    options.gtol, ftol)
+    out = _minimise(evaluator.scaled_objective("search"), x0, evaluator.span,
+                    options.max_evaluations, options.gtol, ftol)
     theta_hat = evaluator.theta(out.x)
     ev_hat = evaluator(theta_hat, "search")
     optimizer = {"success": bool(out.success), "message": str(out.message),

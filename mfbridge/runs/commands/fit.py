@@ -4,14 +4,17 @@
     mfbridge fit --param interaction.strength=0:3 --param confinement.stiffness=0.2:4 \\
         --population 8000 --out fits/core endpoints=series ...
 
-Positional arguments are the configuration's overrides, as for a plain run. Exit status 0 for a
-converged fit, 1 when the fit did not converge (the folder is still written), 2 for bad input.
+Positional arguments are the configuration's overrides, as for a plain run. Exit status as for
+a run (:mod:`mfbridge.runs.exits`): 0 for a converged fit, 3 when it did not converge (the folder
+is still written), 2 for input refused before any solve, 6 for a failure, 130/143 when
+interrupted.
 """
 
 from __future__ import annotations
 
 import argparse
 import logging
+import signal
 import sys
 
 from mfbridge.errors import InputError, MFBridgeError
@@ -43,21 +46,38 @@ def _parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str]) -> int:
-    """Run the fit; exit status 0 (converged), 1 (not converged) or 2 (bad input)."""
+    """Run the fit; exit status as for a run (:mod:`mfbridge.runs.exits`): 0 converged,
+    3 not converged, 2 refused before any solve (bad input, a folder that must not be written),
+    6 failed, 130/143 interrupted."""
+    from mfbridge.runs.exits import EXIT_CODES, exit_code, signal_exit_code
     from mfbridge.runs.fitting import fit, parse_parameter
+    from mfbridge.runs.signals import interruptible, signal_of
     from mfbridge.solvers.fit import FitOptions
 
     args = _parser().parse_args(argv)
     logging.basicConfig(level=logging.INFO, format="[%(asctime)s][%(name)s][%(levelname)s] - "
                                                    "%(message)s")
     try:
-        jobs = None if args.jobs is None else (args.jobs if args.jobs == "auto"
-                                               else int(args.jobs))
-        options = FitOptions(level=args.level, max_evaluations=args.max_evaluations,
-                             profile=not args.no_profile)
-        result = fit(args.overrides, [parse_parameter(p) for p in args.param], args.population,
-                     out=args.out, options=options, jobs=jobs)
-    except (MFBridgeError, ValueError) as exc:
+        with interruptible():
+            jobs = None if args.jobs is None else (args.jobs if args.jobs == "auto"
+                                                   else _jobs(args.jobs))
+            options = FitOptions(level=args.level, max_evaluations=args.max_evaluations,
+                                 profile=not args.no_profile)
+            result = fit(args.overrides, [parse_parameter(p) for p in args.param],
+                         args.population, out=args.out, options=options, jobs=jobs)
+    except KeyboardInterrupt as exc:
+        name = signal.Signals(signal_of(exc)).name
+        print(f"mfbridge fit: interrupted by {name}; {args.out} holds no fit.json (run the "
+              "same command again to fit again)", file=sys.stderr)
+        return signal_exit_code(signal_of(exc))
+    except MFBridgeError as exc:
         print(f"mfbridge fit: {exc}", file=sys.stderr)
-        return 2 if isinstance(exc, (InputError, ValueError)) else 1
-    return 0 if result.status == "converged" else 1
+        return EXIT_CODES["refused" if isinstance(exc, InputError) else "failed"]
+    return exit_code(result.status)
+
+
+def _jobs(text: str) -> int:
+    try:
+        return int(text)
+    except ValueError:
+        raise InputError(f"--jobs must be a positive integer or auto, got {text!r}") from None
