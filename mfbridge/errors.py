@@ -41,6 +41,11 @@ class ResolutionWarning(UserWarning):
     its cell count); the message says what to set for the full resolution."""
 
 
+class SmoothingWarning(UserWarning):
+    """Snapshots of a fit were smoothed by kernels of different widths: each adds its own
+    variance, so the fitted model explains a spreading the population did not do."""
+
+
 class MultipleBridgesWarning(UserWarning):
     """A multi-start solve found several different bridges (critical points of the rate
     function); the cheapest is returned and the others are kept in ``result.alternatives``."""

@@ -28,7 +28,7 @@ from mfbridge.model.grid import Grid
 from mfbridge.model.potentials import Confinement, Interaction, NoConfinement, NoInteraction
 from mfbridge.model.problem import BridgeProblem
 
-__all__ = ["SeriesProblem", "Snapshot", "segment_steps"]
+__all__ = ["SeriesProblem", "Snapshot", "segment_steps", "smoothing_kernel"]
 
 
 @dataclass(frozen=True)
@@ -63,6 +63,16 @@ def segment_steps(times: np.ndarray, steps: int) -> list[int]:
     return [int(k) for k in base]
 
 
+def smoothing_kernel(law: Any) -> np.ndarray | None:
+    """The covariance (d, d) (L²) that the density estimate of a file of positions adds to its
+    law: the Gaussian kernel's (:class:`~mfbridge.model.samples.Samples` with ``method="kde"``);
+    ``None`` for every other law (parametric laws, arrays, histograms, whose cells add
+    h²/12 per axis at every time alike)."""
+    if getattr(law, "method", None) == "kde" and callable(getattr(law, "kernel_cov", None)):
+        return np.array(law.kernel_cov(), dtype=float)
+    return None
+
+
 @dataclass(frozen=True)
 class SeriesProblem:
     r"""Find the most likely flow through the snapshots (see the module docstring).
@@ -72,7 +82,8 @@ class SeriesProblem:
     pairs, or mappings with keys ``time`` and ``law``) with strictly increasing times; stored as
     normalised cell masses on ``grid``. ``steps``: the number of time steps over
     :math:`[t_0, t_m]`, shared among the segments in proportion to their durations
-    (:func:`segment_steps`).
+    (:func:`segment_steps`). ``kernels``: the smoothing kernel covariance of each snapshot's
+    density estimate (:func:`smoothing_kernel`; found from the laws when not given).
     """
 
     grid: Grid
@@ -81,6 +92,7 @@ class SeriesProblem:
     steps: int = 100
     confinement: Confinement = field(default_factory=NoConfinement)
     interaction: Interaction = field(default_factory=NoInteraction)
+    kernels: tuple[np.ndarray | None, ...] = ()
 
     def __post_init__(self) -> None:
         if not isinstance(self.grid, Grid):
@@ -115,6 +127,11 @@ class SeriesProblem:
             raise InputError(f"steps = {steps} is fewer than the {len(snaps) - 1} segments "
                              "between the snapshots; give at least one step per segment")
         object.__setattr__(self, "steps", int(steps))
+        kernels = tuple(self.kernels) or tuple(smoothing_kernel(s.law) for s in snaps)
+        if len(kernels) != len(snaps):
+            raise InputError(f"kernels must give one entry per snapshot ({len(snaps)}), got "
+                             f"{len(kernels)}")
+        object.__setattr__(self, "kernels", kernels)
         masses = tuple(
             Snapshot(s.time, endpoint_masses(s.law, self.grid, f"snapshot {i} (t = {s.time:g})"))
             for i, s in enumerate(snaps)

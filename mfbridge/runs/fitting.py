@@ -33,10 +33,17 @@ import numpy as np
 
 from mfbridge.errors import InputError
 from mfbridge.model.problem import BridgeProblem
-from mfbridge.model.series import SeriesProblem, Snapshot
+from mfbridge.model.series import SeriesProblem, Snapshot, smoothing_kernel
 from mfbridge.runs.api import build_problem, compose, parallel_jobs, process_pool
 from mfbridge.solvers.comparison import CAUTION, FitSummary, ModelComparison, compare_models
-from mfbridge.solvers.fit import Evaluation, FitOptions, FitParameter, FitResult, fit_series
+from mfbridge.solvers.fit import (
+    Evaluation,
+    FitOptions,
+    FitParameter,
+    FitResult,
+    fit_series,
+    smoothing_note,
+)
 
 log = logging.getLogger("mfbridge")
 
@@ -120,11 +127,16 @@ def series_problem(cfg: Any) -> SeriesProblem:
     if isinstance(problem, SeriesProblem):
         return problem
     assert isinstance(problem, BridgeProblem)
+    from mfbridge.runs.api import _build
+
+    ends = _build(cfg, "endpoints")  # the laws themselves: their smoothing kernels
     return SeriesProblem(grid=problem.grid,
                          snapshots=(Snapshot(0.0, problem.initial),
                                     Snapshot(problem.horizon, problem.final)),
                          noise=problem.noise, steps=problem.steps,
-                         confinement=problem.confinement, interaction=problem.interaction)
+                         confinement=problem.confinement, interaction=problem.interaction,
+                         kernels=(smoothing_kernel(ends["initial"]),
+                                  smoothing_kernel(ends["final"])))
 
 
 def fitted_config(cfg: Any, estimate: Mapping[str, float]) -> Any:
@@ -194,6 +206,8 @@ def fit(config: Any, parameters: Sequence[FitParameter | str] | Mapping[str, Any
                                            for p in params),
                  len(problem.snapshots), ", ".join(f"{t:g}" for t in problem.times),
                  population, len(problem.snapshots) - 1, n_jobs)
+        if (note := smoothing_note(problem)) is not None:
+            log.warning("%s", note)
         start = time.perf_counter()
         if n_jobs > 1:
             with process_pool(n_jobs) as pool:

@@ -45,7 +45,7 @@ import numpy as np
 import scipy.optimize
 import scipy.stats
 
-from mfbridge.errors import ConvergenceWarning, InputError, is_real_number
+from mfbridge.errors import ConvergenceWarning, InputError, SmoothingWarning, is_real_number
 from mfbridge.model.parameters import check_names, numeric_parameters, with_parameters
 from mfbridge.model.series import SeriesProblem
 from mfbridge.solvers.comparison import FitSummary
@@ -530,6 +530,31 @@ def _profile(evaluator: _Evaluator, i: int, theta_hat: np.ndarray, cost_hat: flo
                    others={k: np.array(v) for k, v in other_values.items()})
 
 
+# kernel widths (root mean variance per axis) that differ by more than this factor between
+# snapshots are reported: on synthetic beads, Scott's rule (widths 0.025 to 0.096 µm, factor
+# 3.8) biased the fitted core strength by SCOTT_BIAS while a single kernel of 0.04 µm did not
+# (experiments/results/fit_coverage.md)
+KERNEL_RATIO = 1.1
+
+
+def smoothing_note(problem: SeriesProblem) -> str | None:
+    """A warning text when the snapshots' density estimates used kernels of different widths
+    (see :data:`KERNEL_RATIO`), else ``None``. A kernel adds its covariance to its snapshot;
+    the same kernel at every time shifts every snapshot alike, while kernels that grow with
+    the spread (bandwidth rules) add a spreading of their own that the fitted model must
+    explain (DESIGN.md §8, "Fitting to sampled snapshots: smoothing bias")."""
+    widths = {k: float(np.sqrt(np.trace(c) / len(c))) for k, c in enumerate(problem.kernels)
+              if c is not None}
+    if len(widths) < 2 or max(widths.values()) <= KERNEL_RATIO * min(widths.values()):
+        return None
+    listing = ", ".join(f"{w:.3g} at t = {problem.snapshots[k].time:g}"
+                        for k, w in widths.items())
+    return (f"the snapshots were smoothed by kernels of different widths ({listing}): each "
+            "adds its own variance, so the fitted model must explain a spreading the population "
+            "did not do (an interaction fitted this way is biased); give every snapshot the "
+            "same bandwidth, small against the changes being fitted, or method=histogram")
+
+
 def fit_series(
     problem: SeriesProblem,
     parameters: Sequence[FitParameter],
@@ -597,6 +622,9 @@ def fit_series(
                                       lo_open, hi_open))
     failed = [ev for ev in evaluator.evaluations if ev.status != "converged"]
     status, notes = "converged", []
+    smoothing = smoothing_note(problem)
+    if smoothing is not None:
+        notes.append(smoothing)
     if not (out.success or "ABNORMAL" in str(out.message)):
         status = "not_converged"
         notes.append(f"the search stopped: {out.message}")
@@ -613,6 +641,8 @@ def fit_series(
         message += "; " + "; ".join(notes)
     if status != "converged":
         warnings.warn(ConvergenceWarning(message), stacklevel=2)
+    elif smoothing is not None:
+        warnings.warn(SmoothingWarning(smoothing), stacklevel=2)
     key = tuple(float(v) for v in np.round(theta_hat, 14))
     bridge = evaluator.best[2] if (evaluator.best is not None
                                    and evaluator.best[1] == key) else evaluator.solve(theta_hat)
