@@ -30,6 +30,7 @@ from mfbridge.model.grid import Grid
 from mfbridge.model.parameters import parameter_derivative, with_parameters
 from mfbridge.model.potentials import GaussianCore, Harmonic
 from mfbridge.model.problem import BridgeProblem
+from mfbridge.numerics.observables import trapezoid_weights
 from mfbridge.numerics.reference import (
     PairField,
     bernoulli,
@@ -55,14 +56,6 @@ def problem(n: int, steps: int) -> BridgeProblem:
                          confinement=Harmonic(1.5), interaction=GaussianCore(1.0, 0.6))
 
 
-def _weights(times: np.ndarray) -> np.ndarray:
-    dt = np.diff(times)
-    w = np.zeros(times.size)
-    w[:-1] += dt / 2
-    w[1:] += dt / 2
-    return w
-
-
 def chain_rate(prob: BridgeProblem, result, names=()) -> tuple[float, dict[str, float]]:
     """J_chain = ∫ Σ_i p_i Σ_j q_ij φ(h_j/h_i) dt (φ(r) = r log r − r + 1, trapezoid rule) and
     its partial derivatives at the fixed flow: ∫ Σ_edges p_i (1 − h_j/h_i) ∂θ q_ij dt."""
@@ -71,7 +64,7 @@ def chain_rate(prob: BridgeProblem, result, names=()) -> tuple[float, dict[str, 
     conf = prob.confinement.value(grid.points)
     phi = conf + PairField(grid, prob.interaction)(p)
     rates = edge_rates(phi, grid, sigma)
-    w = _weights(prob.times)
+    w = trapezoid_weights(prob.times)
     beta, diffusivity = 2 / sigma**2, sigma**2 / 2
     total = np.zeros(p.shape[0])
     grads = {name: np.zeros(p.shape[0]) for name in names}

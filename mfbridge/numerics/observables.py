@@ -12,6 +12,16 @@ from mfbridge.model.grid import Grid
 from mfbridge.numerics.reference import PairField, faces
 
 
+def trapezoid_weights(times: np.ndarray) -> np.ndarray:
+    """Weights ω (shape (K+1,), time units) of the trapezoid rule on the nodes ``times``:
+    ∫ f dt ≈ Σ_k ω_k f(t_k), ω_k = (t_{k+1} − t_{k−1})/2 inside, half a step at the ends."""
+    dt = np.diff(np.asarray(times, dtype=float))
+    weights = np.zeros(dt.size + 1)
+    weights[:-1] += dt / 2
+    weights[1:] += dt / 2
+    return weights
+
+
 def _spatial_axes(grid: Grid) -> tuple[int, ...]:
     return tuple(range(1, grid.dim + 1))
 

@@ -35,6 +35,7 @@ from threadpoolctl import threadpool_limits
 from mfbridge.errors import InputError
 from mfbridge.model.grid import Grid
 from mfbridge.model.potentials import Confinement, Interaction
+from mfbridge.numerics.observables import trapezoid_weights
 from mfbridge.particles.simulator import (
     PAIR_MODES,
     SUBSTEP_TARGET,
@@ -446,10 +447,7 @@ def _add_free_stats(stats: RunStats, grid: Grid, free: ParticleRun, flow: np.nda
 def _cost_of_control(result: BridgeResult, control: np.ndarray) -> float:
     """(1/2σ²) Σ_k ω_k Σ_i |u_{k,i}|² p_{k,i} (trapezoid weights ω in time)."""
     times = np.asarray(result.times, dtype=float)
-    dt = np.diff(times)
-    omega = np.zeros_like(times)
-    omega[:-1] += dt / 2
-    omega[1:] += dt / 2
+    omega = trapezoid_weights(times)
     sq = np.sum(control**2, axis=-1) * result.masses
     per_time = sq.reshape(len(times), -1).sum(axis=1)
     return float(omega @ per_time / (2.0 * result.noise**2))

@@ -91,14 +91,6 @@ class _Derivative(Interaction):
         raise NotImplementedError
 
 
-def _trapezoid(times: np.ndarray) -> np.ndarray:
-    dt = np.diff(times)
-    w = np.zeros(times.size)
-    w[:-1] += dt / 2
-    w[1:] += dt / 2
-    return w
-
-
 def cost_gradient(problem: BridgeProblem, result: BridgeResult,
                   names: Sequence[str]) -> tuple[float, dict[str, float]]:
     """J and its derivatives in the named model parameters (see the module docstring).
@@ -129,7 +121,7 @@ def cost_gradient(problem: BridgeProblem, result: BridgeResult,
     pair = PairField(grid, problem.interaction)
     phi = conf + pair(p)
     rates = edge_rates(phi, grid, sigma)
-    weights = _trapezoid(problem.times)
+    weights = observables.trapezoid_weights(problem.times)
     dphi: dict[str, np.ndarray] = {}
     for name in names:
         part, _, field = name.partition(".")
