@@ -467,9 +467,10 @@ def _outlier_notes(laws: dict[str, Any], shown: int = 5) -> list[str]:
 
 def _check_resolution(laws: dict[str, Any], grid: Grid, width: np.ndarray,
                       wanted: np.ndarray | None, cells_per_width: Any) -> None:
-    """Say why the automatic box cannot resolve the laws (name → endpoint), never cap it silently: outlying
-    samples (named) that stretch the box, a kernel narrower than a cell (refused), or a cell
-    count capped at :data:`AUTO_CELLS` (a :class:`ResolutionWarning`)."""
+    """Say why the automatic box cannot resolve the laws (name → endpoint: the two endpoints,
+    or every snapshot of a series), never cap it silently: outlying samples (named) that
+    stretch the box, a kernel narrower than a cell (refused), or a cell count capped at
+    :data:`AUTO_CELLS` (a :class:`ResolutionWarning`)."""
     if not np.all(width > 0):
         return
     h = np.asarray(grid.spacing)
