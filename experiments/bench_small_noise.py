@@ -184,11 +184,14 @@ def main(argv: list[str] | None = None) -> int:
         target = TARGETS.get(r["noise"])
         if target is not None:
             seconds, error = target
-            ok = r["wall"] < seconds and (error is None or abs(r["err_cost"]) <= error)
-            md.append(f"- σ = {r['noise']:g}: target wall < {seconds:g} s"
+            accurate = error is None or abs(r["err_cost"]) <= error
+            verdict = {t: "met" if accurate and r[t] < seconds else "NOT met"
+                       for t in ("wall", "cpu")}
+            md.append(f"- σ = {r['noise']:g}: target < {seconds:g} s"
                       + (f", |rel. J error| ≤ {error:g}" if error else "")
-                      + f": {'met' if ok else 'NOT met'} (wall {r['wall']:.2f} s, CPU "
-                        f"{r['cpu']:.2f} s, error {r['err_cost']:.2e})")
+                      + f": by wall time {verdict['wall']} ({r['wall']:.2f} s), by CPU time "
+                        f"{verdict['cpu']} ({r['cpu']:.2f} s; the measure on a loaded machine), "
+                        f"error {r['err_cost']:.2e}")
     md.append("")
 
     log("Table 2")
@@ -196,8 +199,14 @@ def main(argv: list[str] | None = None) -> int:
     errs = [abs(r["err_cost"]) for r in t2]
     orders = [math.log2(errs[i] / errs[i + 1]) for i in range(len(errs) - 1)]
     observed = ", ".join(f"{o:.2f}" for o in orders)
+    dts = np.array([HORIZON / r["steps"] for r in t2])
+    fit = np.linalg.lstsq(np.stack([dts**2, np.ones_like(dts)], axis=1),
+                          np.array([r["err_cost"] for r in t2]), rcond=None)[0]
     md += ["## Table 2 — σ = 0.1, steps doubled (cells × √2)", "", *table(t2), "",
-           f"Observed orders in Δt of the J error: {observed} (expected 2).", ""]
+           f"Observed orders in Δt of |J error|: {observed} (expected 2). Least-squares fit of "
+           f"the signed errors by a·Δt² + s: a = {fit[0]:.3g}, s = {fit[1]:.2e} (s: the part "
+           "that does not fall with Δt; where a·Δt² is below |s| the order is meaningless).",
+           ""]
 
     log("Table 3")
     t3 = response_rows()
