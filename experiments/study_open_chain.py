@@ -45,6 +45,11 @@ BUMPS = {
 HORIZON = 0.8  # e^{-2π² T} ~ 1e-7: the horizon's part of the gap is negligible
 
 
+def signed(bump: str) -> str:
+    """'ρ̄ + bump', or 'ρ̄ − ...' when the bump's name starts with a minus sign."""
+    return f"ρ̄ − {bump[1:]}" if bump.startswith("−") else f"ρ̄ + {bump}"
+
+
 def profile(a: float, b: float, bump: str):
     return lambda x: a + (b - a) * x + BUMPS[bump](x)
 
@@ -78,7 +83,7 @@ def table() -> tuple[list[str], list[float]]:
                 costs.append(res.cost)
             gaps = [c / exact - 1 for c in costs]
             ratios.append(abs(gaps[0] / gaps[1]))
-            rows.append(f"| ({a}, {b}) | ρ̄ + {bump} | {exact:.7f} | {local:.7f} | "
+            rows.append(f"| ({a}, {b}) | {signed(bump)} | {exact:.7f} | {local:.7f} | "
                         f"{costs[0]:.7f} ({gaps[0]:+.2e}) | {costs[1]:.7f} ({gaps[1]:+.2e}) | "
                         f"{ratios[-1]:.2f} | {seconds[0]:.1f} + {seconds[1]:.1f} |")
             print(rows[-1], flush=True)
