@@ -43,14 +43,26 @@ OUT = output_dir(Path(__file__).resolve().parent / "results")
 PREVIOUS = "--previous" in sys.argv[1:]
 
 
-def _timed(problem: BridgeProblem, options: DirectOptions) -> tuple[object, float]:
+class Clock:
+    """Wall and CPU seconds (this process) since creation: on a shared machine the CPU time is
+    the steadier measure (the solvers run on one thread)."""
+
+    def __init__(self) -> None:
+        self.wall, self.cpu = time.perf_counter(), time.process_time()
+
+    def stop(self) -> tuple[float, float]:
+        return time.perf_counter() - self.wall, time.process_time() - self.cpu
+
+
+def _timed(problem: BridgeProblem, options: DirectOptions) -> tuple[object, float, float]:
+    """The direct solver's result, its wall and its CPU seconds."""
     import warnings
 
-    t0 = time.perf_counter()
+    clock = Clock()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         result = solve_direct(problem, options)
-    return result, time.perf_counter() - t0
+    return (result, *clock.stop())
 
 
 def cross_check(n: int, k: int) -> list[str]:
@@ -64,13 +76,13 @@ def cross_check(n: int, k: int) -> list[str]:
     for label, mu, nu, box, w in cases:
         problem = BridgeProblem(grid=Grid(*box, n), initial=mu, final=nu, noise=1.0, horizon=1.0,
                                 steps=k, confinement=Harmonic(1.0), interaction=w)
-        t0 = time.perf_counter()
+        clock = Clock()
         main = solve_bridge(problem, SolverOptions())
-        t_main = time.perf_counter() - t0
-        direct, t_direct = _timed(problem, DirectOptions())
+        w_main, t_main = clock.stop()
+        direct, w_direct, t_direct = _timed(problem, DirectOptions())
         previous = ""
         if PREVIOUS:
-            old, t_old = _timed(problem, DirectOptions(method="truncated"))
+            old, _, t_old = _timed(problem, DirectOptions(method="truncated"))
             previous = f" | {t_old:.1f} ({old.iterations} it; J {old.cost / direct.cost - 1:+.1e})"
         # the main solver can fail on coarse grids (reported, not hidden)
         gap = direct.cost / main.cost - 1 if main.cost > 0 else float("nan")
@@ -83,8 +95,9 @@ def cross_check(n: int, k: int) -> list[str]:
                            cov0=0.16, mean1=1.2, cov1=0.49, times=k + 1)
             exact = f"{ex.cost:.6f} (direct {direct.cost / ex.cost - 1:+.2e})"
         rows.append(f"| {label} | {n} x {k} | {main.cost:.6f} | {direct.cost:.6f} | {gap:+.2e} | "
-                    f"{dens:.2e} | {exact or '—'} | {t_main:.2f} | {t_direct:.1f} "
-                    f"({direct.iterations} it) | {t_direct / t_main:.1f}{previous} |")
+                    f"{dens:.2e} | {exact or '—'} | {t_main:.2f} ({w_main:.2f}) | {t_direct:.1f} "
+                    f"({w_direct:.1f}; {direct.iterations} it) | {t_direct / t_main:.1f}"
+                    f"{previous} |")
         print(rows[-1], flush=True)
     return rows
 
@@ -99,20 +112,21 @@ def problem_2d(n: int, k: int) -> BridgeProblem:
 def cross_check_2d(n: int, k: int) -> str:
     """The 2D case at tol 1e-7: main solver, the Newton method, and (--previous) L-BFGS."""
     problem = problem_2d(n, k)
-    t0 = time.perf_counter()
+    clock = Clock()
     main = solve_bridge(problem, SolverOptions())
-    t_main = time.perf_counter() - t0
-    direct, t_direct = _timed(problem, DirectOptions(tol=1e-7))
+    w_main, t_main = clock.stop()
+    direct, w_direct, t_direct = _timed(problem, DirectOptions(tol=1e-7))
     dens = np.abs(main.density - direct.density).max() / main.density.max()
     cg = direct.message.rsplit("Newton iterations, ", 1)[-1].split(" CG")[0]
     previous = ""
     if PREVIOUS:
-        old, t_old = _timed(problem, DirectOptions(tol=1e-7, method="lbfgs"))
+        old, _, t_old = _timed(problem, DirectOptions(tol=1e-7, method="lbfgs"))
         previous = (f" | {t_old:.1f} ({old.iterations} it, {old.status}; J "
                     f"{old.cost / direct.cost - 1:+.1e}) | {t_old / t_direct:.1f}")
     row = (f"| 2D Gaussian core W (1, 0.7) | {n}x{n} x {k} | {main.cost:.6f} | "
-           f"{direct.cost:.6f} | {direct.cost / main.cost - 1:+.2e} | {dens:.2e} | {t_main:.1f} | "
-           f"{t_direct:.1f} ({direct.iterations} Newton, {cg} CG, {direct.status}){previous} |")
+           f"{direct.cost:.6f} | {direct.cost / main.cost - 1:+.2e} | {dens:.2e} | {t_main:.1f} "
+           f"({w_main:.1f}) | {t_direct:.1f} ({w_direct:.1f}; {direct.iterations} Newton, {cg} CG, "
+           f"{direct.status}){previous} |")
     print(row, flush=True)
     return row
 
@@ -172,13 +186,16 @@ def main() -> None:
     lines = ["# Direct solver bench", "",
              "Cross-check (chi = rho, sigma = 1, T = 1, U = x^2/2): main fixed-point solver vs "
              "direct solver (Newton on densities and fluxes, tol 1e-9) on the same grid; "
-             "'ratio' is direct s / main s (the 1D target is 10)."
+             "times are CPU seconds of this process (wall seconds in brackets: on a shared machine "
+             "the wall time grows with the load, the CPU time much less); 'ratio' is direct / main "
+             "CPU s (the 1D target is 10)."
              + (" 'previous' is the truncated Newton method of the density-only form "
                 "(method=truncated), timed in the same run, with its J relative to Newton's."
                 if PREVIOUS else ""),
              f"Machine load at start (1-minute load average, 2 cores shared): {load}.", "",
              "| case | cells x steps | J main | J direct | rel. gap | max density gap / peak "
-             "| exact J | main s | direct s | ratio |" + (" previous s |" if PREVIOUS else ""),
+             "| exact J | main CPU s (wall) | direct CPU s (wall) | ratio |"
+             + (" previous CPU s |" if PREVIOUS else ""),
              "|---|---|---|---|---|---|---|---|---|---|" + ("---|" if PREVIOUS else "")]
     for n, k in ((48, 10), (96, 20), (192, 40)):
         lines += cross_check(n, k)
@@ -187,7 +204,8 @@ def main() -> None:
               + (", with L-BFGS (method=lbfgs, the earlier 2D minimiser) timed in the same run"
                  if PREVIOUS else "") + ":", "",
               "| case | grid x steps | J main | J direct | rel. gap | max density gap / peak "
-              "| main s | direct s |" + (" L-BFGS s | L-BFGS / Newton |" if PREVIOUS else ""),
+              "| main CPU s (wall) | direct CPU s (wall) |"
+              + (" L-BFGS CPU s | L-BFGS / Newton |" if PREVIOUS else ""),
               "|---|---|---|---|---|---|---|---|" + ("---|---|" if PREVIOUS else "")]
     for n, k in ((16, 8), (24, 12), (32, 8), (32, 16), (64, 8)):
         lines.append(cross_check_2d(n, k))

@@ -324,13 +324,12 @@ class FluxAction:
             cols.append(col)
         reduced = torch.stack(cols, dim=-1).detach().numpy().reshape(-1, width, width)
         # local variables → reduced ones: F; ρ̄ = (ρ_k + ρ_{k+1})/2 on each side; Φ̄
-        expand = np.zeros((width, LOCAL + 2))
-        expand[0, 0] = 1.0
-        expand[1, [1, 3]] = 0.5
-        expand[2, [2, 4]] = 0.5
-        if width == 5:
-            expand[3, 5] = expand[4, 6] = 1.0
-        blocks = np.einsum("ai,nab,bj->nij", expand, reduced, expand, optimize=True)
+        # (a gather: each local variable is one reduced variable times a weight)
+        source = np.array([0, 1, 2, 1, 2, 3, 4])
+        weight = np.array([1.0, 0.5, 0.5, 0.5, 0.5, 1.0, 1.0])
+        if width == 3:
+            source[5:], weight[5:] = 0, 0.0
+        blocks = reduced[:, source[:, None], source[None, :]] * np.outer(weight, weight)
         kk = np.repeat(np.arange(k_steps), n_f)
         lo, hi = np.tile(self.layout.lo, k_steps), np.tile(self.layout.hi, k_steps)
 
@@ -426,7 +425,6 @@ def convexify(reduced: np.ndarray) -> tuple[np.ndarray, int]:
         v = np.where(use_alt[:, None], alt, v)
         v = v / np.maximum(np.linalg.norm(v, axis=1, keepdims=True), 1e-300)
         extra2[bad] = (-low[bad])[:, None, None] * v[bad][:, :, None] * v[bad][:, None, :]
-    expand = np.zeros((2, 4))
-    expand[0, [0, 2]] = 0.5
-    expand[1, [1, 3]] = 0.5
-    return np.einsum("ai,nab,bj->nij", expand, extra2, expand), int(bad.sum())
+    # ρ̄_lo = (ρ_k(lo) + ρ_{k+1}(lo))/2, ρ̄_hi likewise: a gather with weight 1/4
+    side = np.array([0, 1, 0, 1])
+    return 0.25 * extra2[:, side[:, None], side[None, :]], int(bad.sum())
