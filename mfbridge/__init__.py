@@ -22,12 +22,15 @@ from mfbridge import _moved
 from mfbridge.errors import (
     ConvergenceWarning,
     DiskFullError,
+    GridWarning,
     InputError,
     MFBridgeError,
     MultipleBridgesWarning,
     PrecisionWarning,
     ResolutionWarning,
     RunStatusWarning,
+    SuspectResultWarning,
+    TargetNotMetWarning,
 )
 from mfbridge.model.endpoints import Gaussian, GaussianMixture, UniformBox
 from mfbridge.model.grid import Grid
@@ -38,6 +41,7 @@ from mfbridge.runs.api import build_problem, check, compose, load, solve
 from mfbridge.runs.fitting import compare_fits, fit
 from mfbridge.solvers.comparison import compare_models
 from mfbridge.solvers.fit import FitOptions, FitParameter, fit_series
+from mfbridge.solvers.accuracy import AccuracyOptions, solve_and_estimate
 from mfbridge.solvers.fixed_point import Iteration, SolverOptions, solve_bridge
 from mfbridge.solvers.linear_quadratic import LQBridge, lq_bridge
 from mfbridge.solvers.series import solve_series
@@ -47,6 +51,7 @@ _moved.install()
 __version__ = "0.1.0"
 
 __all__ = [
+    "AccuracyOptions",
     "BridgeProblem",
     "BridgeResult",
     "ConvergenceWarning",
@@ -56,6 +61,7 @@ __all__ = [
     "Gaussian",
     "GaussianMixture",
     "Grid",
+    "GridWarning",
     "InputError",
     "Iteration",
     "LQBridge",
@@ -67,6 +73,8 @@ __all__ = [
     "SeriesProblem",
     "Snapshot",
     "SolverOptions",
+    "SuspectResultWarning",
+    "TargetNotMetWarning",
     "UniformBox",
     "build_problem",
     "check",
@@ -78,6 +86,7 @@ __all__ = [
     "load",
     "lq_bridge",
     "solve",
+    "solve_and_estimate",
     "solve_bridge",
     "solve_series",
 ]

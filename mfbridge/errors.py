@@ -32,6 +32,21 @@ class ConvergenceWarning(UserWarning):
     """An iterative solver stopped before reaching its stated tolerance."""
 
 
+class SuspectResultWarning(ConvergenceWarning):
+    """The iteration stopped as converged but the result failed a sanity check (its status is
+    ``"suspect"``; the message names the check and what to do)."""
+
+
+class GridWarning(UserWarning):
+    """The grid looks coarse for the noise (cell Péclet number), too narrow (mass at a wall) or
+    far too wide (most cells empty); the message says what to change."""
+
+
+class TargetNotMetWarning(UserWarning):
+    """A target accuracy was asked for and not reached within the budget (the message says
+    which grids were tried and why the refinement stopped)."""
+
+
 class PrecisionWarning(UserWarning):
     """The fast route lost precision and the solver switched to a slower exact one."""
 

@@ -13,10 +13,12 @@ any object with the :class:`GridLike` attributes.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import errno
 import hashlib
 import json
+import math
 import os
 import shutil
 import tempfile
@@ -122,6 +124,93 @@ class Segment:
 
 
 @dataclass
+class ErrorEstimate:
+    r"""Estimated discretisation error of a result, from companion solves on coarser grids
+    (how: :mod:`mfbridge.accuracy`; Richardson extrapolation and Roache's grid convergence
+    index, Annu. Rev. Fluid Mech. 29, 1997).
+
+    * ``cost_error``: estimated :math:`|J_h - J|` (absolute, dimensionless) and
+      ``cost_relative`` the same divided by :math:`|J_h|`;
+    * ``cost_extrapolated``: Richardson's extrapolation of J to zero cell width and time step;
+    * ``gci``: Roache's grid convergence index of J (relative): ``safety_factor`` ×
+      ``cost_relative``, an error band meant to hold with about 95% confidence;
+    * ``density_l1``: estimated largest L1 error of the density flow over time (cell masses,
+      on the companion's cells); ``mean_error``: estimated largest error of the mean path
+      (length);
+    * ``observed_order``: the order from three grids (NaN with fewer, or when the differences
+      change sign), ``order``: the order used, ``asymptotic``: whether the observed order
+      agrees with the scheme's (None: not checked);
+    * ``grids``: one record per companion (shape, steps, cost, status, iterations, seconds);
+      ``seconds``: the wall-clock time the companions took; ``note``: caveats in words.
+    """
+
+    cost_error: float
+    cost_relative: float
+    cost_extrapolated: float
+    gci: float
+    safety_factor: float
+    density_l1: float
+    mean_error: float
+    observed_order: float
+    order: float
+    asymptotic: bool | None
+    grids: list[dict[str, Any]] = field(default_factory=list)
+    seconds: float = 0.0
+    note: str = ""
+    # with a target accuracy: the target (relative error of J), whether the GCI met it, and the
+    # grids tried (box, shape, steps, cost, gci, status, seconds), the last one returned
+    target: float | None = None
+    target_met: bool | None = None
+    tried: list[dict[str, Any]] = field(default_factory=list)
+    scheme_order: float = 2.0  # the order of the scheme in h and Δt
+
+    @property
+    def available(self) -> bool:
+        return bool(np.isfinite(self.cost_error))
+
+    def summary(self) -> dict[str, Any]:
+        """The record written into ``summary.json`` (NaN written as null)."""
+        out = dataclasses.asdict(self)
+        return {k: (None if isinstance(v, float) and not np.isfinite(v) else v)
+                for k, v in out.items()}
+
+    @classmethod
+    def from_summary(cls, record: dict[str, Any]) -> ErrorEstimate:
+        values = {k: (math.nan if v is None and k not in ("asymptotic", "target", "target_met")
+                      else v)
+                  for k, v in record.items() if k in {f.name for f in dataclasses.fields(cls)}}
+        return cls(**values)
+
+    def describe(self) -> str:
+        """One line for figure titles and tables."""
+        if not self.available:
+            return "no error estimate"
+        text = (f"est. error {100 * self.cost_relative:.2g}% (GCI {100 * self.gci:.2g}%), "
+                f"extrapolated J = {self.cost_extrapolated:.6g}")
+        if self.asymptotic is False:
+            text += " (not asymptotic)"
+        return text
+
+    def lines(self) -> list[str]:
+        """A few lines for the log: the estimate, how it was made, and its caveats."""
+        companions = ", ".join(f"{' x '.join(map(str, g['shape']))} cells x {g['steps']} steps"
+                               for g in self.grids) or "none"
+        if not self.available:
+            return [f"no discretisation-error estimate: {self.note} (companions: {companions})"]
+        out = [f"discretisation error of J: ±{self.cost_error:.3g} ({100 * self.cost_relative:.2g}"
+               f"%), GCI {100 * self.gci:.2g}% (safety factor {self.safety_factor:g}); "
+               f"extrapolated J = {self.cost_extrapolated:.8g}; density flow ±"
+               f"{self.density_l1:.2g} (L1), mean path ±{self.mean_error:.2g}",
+               f"estimated from companion solves on {companions} ({self.seconds:.3g} s); "
+               + (f"observed order {self.observed_order:.2f} (the scheme's: "
+                  f"{self.scheme_order:g}), order used {self.order:.3g}"
+                  if np.isfinite(self.observed_order) else f"order {self.order:g} assumed")]
+        if self.note:
+            out.append(f"note: {self.note}")
+        return out
+
+
+@dataclass
 class BridgeResult:
     r"""The mean-field Schrödinger bridge on a grid.
 
@@ -180,6 +269,10 @@ class BridgeResult:
     steady_density: np.ndarray | None = None
     # a bridge through more than two snapshots: its segments (times[seg.first] = seg.start)
     segments: list[Segment] = field(default_factory=list)
+    # discretisation-error estimate (mfbridge.solvers.accuracy), None when not estimated
+    error: ErrorEstimate | None = None
+    # advice on the grid, before and after the solve (mfbridge.solvers.advice)
+    advice: list[str] = field(default_factory=list)
 
     @property
     def converged(self) -> bool:
@@ -240,6 +333,8 @@ class BridgeResult:
             "start": self.start,
             "alternatives": [a.summary() for a in self.alternatives],
             **({"segments": [s.summary() for s in self.segments]} if self.segments else {}),
+            "error_estimate": None if self.error is None else self.error.summary(),
+            "advice": list(self.advice),
         }
 
     def _noise_input(self) -> str:
@@ -294,7 +389,15 @@ class BridgeResult:
                 values = [row.get(key, np.nan) for row in self.history]
                 data[f"history_{key}"] = (["iteration"], np.asarray(values, dtype=float), {})
         variables = {k: xr.Variable(d, np.asarray(v), attrs=a) for k, (d, v, a) in data.items()}
-        attrs = {"summary": json.dumps(self.summary()), "config": json.dumps(self.config)}
+        attrs = {"summary": json.dumps(self.summary(), default=_json_default),
+                 "config": json.dumps(self.config)}
+        if self.error is not None:
+            attrs.update({"cost_error_estimate": self.error.cost_error,
+                          "cost_relative_error_estimate": self.error.cost_relative,
+                          "cost_extrapolated": self.error.cost_extrapolated,
+                          "cost_gci": self.error.gci,
+                          "density_l1_error_estimate": self.error.density_l1,
+                          "mean_error_estimate": self.error.mean_error})
         return xr.Dataset(variables, coords=coords, attrs=attrs)
 
     def save(self, directory: str | os.PathLike[str], *, marker: bool = True) -> Path:
@@ -381,6 +484,9 @@ class BridgeResult:
             stopping=summary.get("stopping", {}),
             steady_density=ds["steady_density"].values if "steady_density" in ds else None,
             segments=[Segment(**s) for s in summary.get("segments", [])],
+            error=(None if summary.get("error_estimate") is None
+                   else ErrorEstimate.from_summary(summary["error_estimate"])),
+            advice=list(summary.get("advice", [])),
         )
 
 

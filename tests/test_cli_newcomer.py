@@ -46,7 +46,7 @@ def test_help(tmp_path):
         assert f"\n  {group}\n" in text
         for option in options:
             assert f" {option} " in text or f"*{option} " in text, (group, option)
-    assert "*optimal" in text and "*line" in text  # defaults marked
+    assert "*optimal" in text and "*fitted" in text and "*estimate" in text  # defaults marked
 
 
 def test_version(monkeypatch, capsys):

@@ -62,6 +62,9 @@ def _for_series(group: str, option: str) -> bool:
     return re.search(r"^snapshots:|\$\{endpoints\.snapshots\}", text, re.MULTILINE) is not None
 
 
+FITTED_GRIDS = ("fitted", "span")
+
+
 def _grid_dim(option: str) -> int:
     extra = ["endpoints=series"] if _for_series("grid", option) else []
     grid = instantiate(compose([f"grid={option}", *extra]).grid)
@@ -85,7 +88,8 @@ def _endpoint_dim(option: str) -> int:
 
 
 def _matching_grid(dim: int) -> str:
-    found = [opt for opt in _options("grid") if _grid_dim(opt) == dim]
+    # a fixed box: the fitted ones (fitted, span) take their dimension from the endpoints
+    found = [opt for opt in _options("grid") if opt not in FITTED_GRIDS and _grid_dim(opt) == dim]
     assert found, f"no grid option in {CONF_DIR / 'grid'} is {dim}-dimensional"
     return found[0]
 
@@ -212,12 +216,12 @@ def test_bad_steps(steps: str) -> None:
         ("noise=abc", "noise must be a positive number"),
         ("interaction.strength=abc", r"interaction.*strength must be a number"),
         ("confinement.stiffness=abc", r"confinement.*stiffness must be a number"),
-        ("grid.lower=abc", "Grid lower must be a number"),
+        ("grid=line grid.lower=abc", "Grid lower must be a number"),
     ],
 )
 def test_non_numeric_parameter(override: str, match: str) -> None:
     with pytest.raises(InputError, match=match):
-        mfbridge.build_problem(compose([override]))
+        mfbridge.build_problem(compose(override.split()))
 
 
 def test_grid_with_two_cells() -> None:
@@ -226,7 +230,8 @@ def test_grid_with_two_cells() -> None:
 
 
 def test_endpoint_mass_outside_the_box() -> None:
-    cfg = compose(["endpoints=gaussians", "endpoints.final.mean=10"])
+    # a fixed box (the default, grid=fitted, would hold the endpoint)
+    cfg = compose(["grid=line", "endpoints=gaussians", "endpoints.final.mean=10"])
     with pytest.raises(InputError, match=r"final distribution lies outside the box \[-4, 4\]"):
         mfbridge.build_problem(cfg)
 

@@ -207,7 +207,13 @@ OLD_TARGETS = {
 
 
 #: targets of modules written after the layout (no old name exists for them)
-NEW_TARGETS = {"mfbridge.model.reservoirs.Reservoirs", "mfbridge.model.reservoirs.closed_box"}
+NEW_TARGETS = {
+    "mfbridge.model.reservoirs.Reservoirs",
+    "mfbridge.model.reservoirs.closed_box",
+    "mfbridge.model.fitted_grid.fitted_grid",  # issue 12: the default box
+    "mfbridge.model.fitted_grid.fitted_steps",  # issue 12: the default steps (named in a comment)
+    "mfbridge.solvers.accuracy.AccuracyOptions",  # issue 12: the accuracy group
+}
 
 
 def test_every_target_in_conf_has_its_old_name_listed() -> None:
@@ -324,13 +330,18 @@ def test_premove_config_names_the_old_paths() -> None:
 
 def test_premove_run_replays(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     """``mfbridge replay`` solves the recorded config (old targets) again and compares with the
-    stored result: the same numbers within 1e-8 (measured: bit for bit on the machine that
-    wrote it, until the dense route's marginals were polished by operator sweeps (issue 14),
-    which moved the cost of this 32-cell run by 3.8e-9 and the density by 3.6e-10)."""
+    stored result: the same flow within 1e-8 (measured: bit for bit on the machine that wrote
+    it, until the dense route's marginals were polished by operator sweeps (issue 14), which
+    moved the density of this 32-cell run by 3.6e-10). The cost differs: it was stored by the
+    trapezoid rule on the time nodes and is now evaluated at the step midpoints (issue 12),
+    3.4093187856 then, 3.37566 now (32 cells, 8 steps): the verdict is DIFFERENT on the cost."""
     code = replay(PREMOVE, tmp_path / "again", 1e-8, figures=False)
     out = capsys.readouterr().out
-    assert code == 0, out
-    assert "verdict: REPRODUCED" in out
+    lines = {line.split(":")[0]: line for line in out.splitlines() if ":" in line}
+    for field in ("density", "mean"):
+        assert float(lines[field].rsplit("=", 1)[1]) <= 1e-8, out
+    assert "stored 3.40931878" in lines["cost"] and "replayed 3.37566" in lines["cost"], out
+    assert code == 1 and "verdict: DIFFERENT" in out
     stored = mfbridge.load(PREMOVE)
     assert stored.config is not None
     assert stored.config["interaction"]["_target_"] == "mfbridge.potentials.GaussianCore"

@@ -148,8 +148,10 @@ def test_stationary_endpoints_give_a_constant_flow_at_zero_cost():
 def test_long_horizon_cost_tends_to_twice_the_free_energy_gap():
     # For reversible dynamics J_T(rho_eq, nu) -> (2/sigma^2)(F(nu) - F(rho_eq)) as T -> infinity
     # (quasi-potential = free energy: Bertini, De Sole, Gabrielli, Jona-Lasinio & Landim, Rev.
-    # Mod. Phys. 87, 2015). Measured relative gaps 1.2e-1, 1.4e-2, 2.3e-4 for T = 1, 2, 4: an
-    # exponential approach with rate ~2.1 per unit time, the same on both doublings.
+    # Mod. Phys. 87, 2015). Measured relative gaps 1.2e-1, 1.4e-2, 1.5e-3 for T = 1, 2, 3: an
+    # exponential approach with rate ~2.2 per unit time, the same on both steps. (At T = 4 the
+    # gap, 2.0e-4 by Richardson's rule from 256 and 512 cells, is below the cost's own
+    # discretisation error at 256 cells, -3.2e-4, so the ladder stops at T = 3.)
     grid = Grid(-4.0, 4.0, 256)
     p_eq = stationary_state(grid, CONFINEMENT, INTERACTION, NOISE)
     nu = Gaussian(1.0, 0.2).masses(grid)
@@ -157,7 +159,7 @@ def test_long_horizon_cost_tends_to_twice_the_free_energy_gap():
     u = CONFINEMENT.value(grid.points)
     free = observables.free_energy(np.stack([p_eq, nu]), grid, NOISE, u, pair)
     limit = 2.0 / NOISE**2 * (free[1] - free[0])
-    horizons = np.array([1.0, 2.0, 4.0])
+    horizons = np.array([1.0, 2.0, 3.0])
     gaps = []
     for horizon in horizons:
         result = solve_bridge(BridgeProblem(grid=grid, initial=p_eq, final=nu, noise=NOISE,
@@ -169,4 +171,4 @@ def test_long_horizon_cost_tends_to_twice_the_free_energy_gap():
     assert np.all(gaps > 0) and np.all(np.diff(gaps) < 0)
     rates = -np.diff(np.log(gaps)) / np.diff(horizons)
     assert abs(rates[1] - rates[0]) < 0.2 * rates[0], rates
-    assert gaps[-1] < 5e-4
+    assert gaps[-1] < 3e-3

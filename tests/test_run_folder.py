@@ -88,10 +88,10 @@ def test_solved_tiny_problem_is_converged(solved_1d: Solved) -> None:
     # flux quadrature, the free-energy change from F at the ends); J = kinetic + drift + dF/sigma^2
     # holds in the continuum (common practice, no source: expand |j - r|^2 and integrate the
     # cross term by parts with the continuity equation) and on the grid up to the discretisation
-    # error: measured relative gap -1.99e-3 on 48 cells x 10 steps (its order: tests/
-    # test_optimality.py::test_cost_parts_add_up_at_second_order)
+    # error: measured relative gap +6.5e-4 on 48 cells x 10 steps (fitted box; cost at the
+    # step midpoints) (its order: tests/test_optimality.py::test_cost_parts_add_up_at_second_order)
     parts = result.cost_kinetic + result.cost_drift + result.cost_free_energy
-    assert abs(result.cost - parts) <= 4e-3 * result.cost
+    assert abs(result.cost - parts) <= 1.3e-3 * result.cost
 
 
 def test_result_nc_is_labelled_1d(solved_1d: Solved) -> None:

@@ -327,10 +327,13 @@ def test_distance_is_normalised_by_the_sweep_range(tmp_path: Path) -> None:
     # Ranges over the sweep: strength 4, noise 0.2. Normalised: d(A) = sqrt((1/4)^2 + 1) = 1.03,
     # d(B) = sqrt((3/4)^2 + (1/2)^2) = 0.90, so B. Raw differences would pick A
     # (sqrt(1 + 0.04) against sqrt(9 + 0.01)): the check fails without the normalisation.
+    # (a fixed box: the default one is fitted to the trap's spread, which depends on the noise,
+    # and a warm start needs the same grid)
     sweep = tmp_path / "sweep"
-    _run(sweep / "A", "interaction.strength=0", "noise=0.8")
-    _run(sweep / "B", "interaction.strength=4", "noise=0.9")
-    folder, warm = records.nearest_run(_config("interaction.strength=1", "noise=1.0"), sweep)
+    _run(sweep / "A", "grid=line", "interaction.strength=0", "noise=0.8")
+    _run(sweep / "B", "grid=line", "interaction.strength=4", "noise=0.9")
+    folder, warm = records.nearest_run(_config("grid=line", "interaction.strength=1",
+                                               "noise=1.0"), sweep)
     assert folder == sweep / "B"
     assert warm.distance == pytest.approx((0.75**2 + 0.5**2) ** 0.5, rel=1e-12)
 

@@ -207,6 +207,30 @@ class Grid:
         upper = np.asarray(self.upper)
         return np.all((arr >= lower) & (arr <= upper), axis=-1)
 
+    def overlaps(self, target: Grid) -> tuple[np.ndarray, ...]:
+        """Per axis, the fraction of each cell of this grid inside each cell of ``target``:
+        arrays of shape (target.shape[k], shape[k]), O[j, i] = |c_i ∩ c'_j| / h_k (the cells'
+        widths along axis k). A column sums to the fraction of cell i inside the target box."""
+        if not isinstance(target, Grid) or target.dim != self.dim:
+            raise InputError(f"a {self.dim}D target grid is needed, got {target!r}")
+        out = []
+        for e_src, e_dst, h in zip(self.edges, target.edges, self.spacing, strict=True):
+            left = np.maximum(e_dst[:-1, None], e_src[None, :-1])
+            right = np.minimum(e_dst[1:, None], e_src[None, 1:])
+            out.append(np.clip(right - left, 0.0, None) / h)
+        return tuple(out)
+
+    def remap(self, masses: np.ndarray, target: Grid) -> np.ndarray:
+        """Cell masses (..., *shape) moved to the cells of ``target`` (..., *target.shape),
+        reading them as a piecewise-constant density: each target cell receives the mass of the
+        parts of the cells it overlaps (conservative; mass outside the target box is lost).
+        On nested grids (target cells unions of these) it sums the masses of the cells inside."""
+        out = np.asarray(masses, dtype=float)
+        lead = out.ndim - self.dim
+        for a, weights in enumerate(self.overlaps(target)):
+            out = np.moveaxis(np.tensordot(weights, out, axes=([1], [lead + a])), 0, lead + a)
+        return out
+
     def describe(self) -> dict[str, Any]:
         """Plain-dict summary: lower, upper, shape and spacing as lists."""
         return {

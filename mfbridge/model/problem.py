@@ -4,11 +4,12 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
 from mfbridge.errors import InputError
-from mfbridge.model.endpoints import endpoint_masses
+from mfbridge.model.endpoints import Endpoint, endpoint_masses
 from mfbridge.model.grid import Grid
 from mfbridge.model.potential_checks import as_confinement, as_interaction
 from mfbridge.model.potentials import Confinement, Interaction, NoConfinement, NoInteraction
@@ -33,6 +34,9 @@ class BridgeProblem:
     steps: int = 100
     confinement: Confinement = field(default_factory=NoConfinement)
     interaction: Interaction = field(default_factory=NoInteraction)
+    # the endpoints as given (Endpoint objects, or masses on ``source_grid``), kept to put the
+    # problem on other grids (:meth:`on_grid`); set from ``initial``/``final`` when None
+    sources: tuple[Any, Any, Grid] | None = field(default=None, repr=False, compare=False)
 
     def __post_init__(self) -> None:
         if not isinstance(self.grid, Grid):
@@ -53,8 +57,13 @@ class BridgeProblem:
         box = (np.asarray(self.grid.lower), np.asarray(self.grid.upper))
         object.__setattr__(self, "confinement", as_confinement(self.confinement, *box))
         object.__setattr__(self, "interaction", as_interaction(self.interaction, *box))
+        given = (self.initial, self.final)
         for name in ("initial", "final"):
             object.__setattr__(self, name, endpoint_masses(getattr(self, name), self.grid, name))
+        if self.sources is None:
+            kept = tuple(v if isinstance(v, Endpoint) else m
+                         for v, m in zip(given, (self.initial, self.final), strict=True))
+            object.__setattr__(self, "sources", (*kept, self.grid))
 
     @property
     def times(self) -> np.ndarray:
@@ -64,6 +73,21 @@ class BridgeProblem:
     @property
     def dt(self) -> float:
         return self.horizon / self.steps
+
+    def on_grid(self, grid: Grid, steps: int) -> BridgeProblem:
+        """The same problem on another ``grid`` (same dimension, any box and cells) with
+        ``steps`` time steps. Endpoint objects are evaluated on the new cells; endpoints given
+        as arrays are moved there conservatively (:meth:`~mfbridge.grid.Grid.remap`), read as
+        piecewise-constant densities on the grid they were given on."""
+        assert self.sources is not None
+        initial, final, source_grid = self.sources
+        if not isinstance(initial, Endpoint):
+            initial = source_grid.remap(initial, grid)
+        if not isinstance(final, Endpoint):
+            final = source_grid.remap(final, grid)
+        return BridgeProblem(grid=grid, initial=initial, final=final, noise=self.noise,
+                             horizon=self.horizon, steps=steps, confinement=self.confinement,
+                             interaction=self.interaction, sources=self.sources)
 
     def linear_flow(self) -> np.ndarray:
         r""":math:`(1 - t/T)\,\mu + (t/T)\,\nu` at every time node: masses, shape

@@ -94,6 +94,15 @@ def _log_apply(apply, log_v: np.ndarray) -> np.ndarray:
     return out
 
 
+def log_step(step: StepOperator, log_v: np.ndarray, transpose: bool = False,
+             log_domain: bool = False) -> np.ndarray:
+    """``log(M exp(log_v))`` (``M^T`` if ``transpose``) for one step operator M: exact in the
+    log domain if ``log_domain``, else in plain arithmetic with a shift (see ``_log_apply``)."""
+    if log_domain:
+        return step.log_apply(log_v, transpose=transpose)
+    return _log_apply(step.apply_transpose if transpose else step.apply, log_v)
+
+
 def backward_sweep(ref: FrozenReference, log_b: np.ndarray) -> np.ndarray:
     """:math:`G_K = b`, :math:`G_{k-1} = M_k (E_k G_k)`; returns log G, shape (K+1, *shape)."""
     k_steps = ref.n_steps
@@ -101,9 +110,7 @@ def backward_sweep(ref: FrozenReference, log_b: np.ndarray) -> np.ndarray:
     log_g[k_steps] = log_b
     for k in range(k_steps, 0, -1):
         weighted = log_g[k] + ref.log_weights[k]
-        step = ref.steps[k - 1]
-        log_g[k - 1] = step.log_apply(weighted) if ref.log_domain else _log_apply(
-            step.apply, weighted)
+        log_g[k - 1] = log_step(ref.steps[k - 1], weighted, False, ref.log_domain)
     return log_g
 
 
@@ -114,10 +121,29 @@ def forward_sweep(ref: FrozenReference, log_a: np.ndarray) -> np.ndarray:
     log_f[0] = log_a
     for k in range(1, k_steps + 1):
         weighted = log_f[k - 1] + ref.log_weights[k - 1]
-        step = ref.steps[k - 1]
-        log_f[k] = step.log_apply(weighted, transpose=True) if ref.log_domain else _log_apply(
-            step.apply_transpose, weighted)
+        log_f[k] = log_step(ref.steps[k - 1], weighted, True, ref.log_domain)
     return log_f
+
+
+def midpoint_log_potentials(ref: FrozenReference, sol: EntropicSolution,
+                            half_steps: list[StepOperator]) -> tuple[np.ndarray, np.ndarray]:
+    r"""log F and log G at the step midpoints, shape (K, *shape) each.
+
+    Within step k the bridge is the h-transform of the chain of that step, so its potentials at
+    :math:`t_k + \Delta t/2` are those of the nodes propagated over half a step,
+    :math:`F = M_{1/2}^\top (E_k F_k)`, :math:`G = M_{1/2} (E_{k+1} G_{k+1})`, with
+    ``half_steps[k]`` the operator :math:`M_{1/2} \approx e^{\Delta t Q_k/2}`; the marginal
+    there is F G (it sums to 1 up to the splitting error of the half steps in 2D and 3D).
+    """
+    k_steps = ref.n_steps
+    shape = ref.log_weights.shape[1:]
+    log_f = np.empty((k_steps, *shape))
+    log_g = np.empty_like(log_f)
+    for k, half in enumerate(half_steps):
+        log_f[k] = log_step(half, sol.log_forward[k] + ref.log_weights[k], True, ref.log_domain)
+        log_g[k] = log_step(half, sol.log_backward[k + 1] + ref.log_weights[k + 1], False,
+                            ref.log_domain)
+    return log_f, log_g
 
 
 def _scaling(log_target: np.ndarray, log_kernel_side: np.ndarray, where: str) -> np.ndarray:

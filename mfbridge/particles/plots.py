@@ -54,6 +54,14 @@ def _picks(report: CheckReport, count: int = 4) -> list[int]:
     return sorted({round(v) for v in np.linspace(0, n - 1, count)})
 
 
+def _ticks_inside(ax: Any) -> None:
+    """Keep only the x ticks inside the view: the locator also returns the next round number
+    beyond each end, whose label (never drawn) lies over the neighbouring panel's."""
+    lo, hi = sorted(ax.get_xlim())
+    ax.set_xticks([t for t in ax.get_xticks() if lo <= t <= hi])
+    ax.set_xlim(lo, hi)
+
+
 def _histograms(report: CheckReport) -> Any:
     import matplotlib.pyplot as plt
 
@@ -71,6 +79,7 @@ def _histograms(report: CheckReport) -> Any:
             ax.hist(pts[:, 0], bins=min(80, max(10, n // 40)), density=True, color="tab:blue",
                     alpha=0.5, label=f"{n} particles")
             ax.plot(x, report.density[k], color="k", lw=1.2, label="ρ_t (grid)")
+            _ticks_inside(ax)
             ax.set_xlabel("x")
             ax.set_ylabel("density (1/length)")
         else:

@@ -39,11 +39,12 @@ from mfbridge.result import (
     dataset_summary,
     read_marker,
 )
+from mfbridge.solvers.accuracy import AccuracyOptions, fixed_point_solve, solve_with_estimate
 from mfbridge.solvers.fixed_point import Iteration, SolverOptions, solve_bridge
 from mfbridge.solvers.series import SeriesResult, solve_series
 
 CONF_DIR = Path(__file__).resolve().parents[2] / "conf"
-GROUPS = ("grid", "confinement", "interaction", "endpoints", "solver")
+GROUPS = ("grid", "confinement", "interaction", "endpoints", "solver")  # required ones
 
 
 def compose(overrides: Sequence[str] | None = None, config_name: str = "config") -> Any:
@@ -151,14 +152,29 @@ def _problem_and_axes(cfg: Any, grid: Grid | None = None
     from mfbridge.model.samples import check_same_dimension
 
     check_same_dimension(endpoints["initial"], endpoints["final"])
+    noise = noise_from_config(cfg.noise, cfg.get("diffusion"))
+    from mfbridge.model.fitted_grid import checked_noise
+
+    checked_noise(noise)  # before the grid, which may be fitted to the noise
+    confinement = _build(cfg, "confinement")
+    steps = cfg.steps
+    if steps is None:  # chosen from the confinement's curvature where the endpoints are
+        from mfbridge.model.endpoints import Endpoint
+        from mfbridge.model.fitted_grid import fitted_steps
+
+        if not all(isinstance(e, Endpoint) for e in endpoints.values()):
+            raise InputError("steps=null chooses the time steps from endpoint objects; with "
+                             "arrays of masses give steps=K")
+        steps = fitted_steps(endpoints["initial"], endpoints["final"], confinement,
+                             cfg.horizon)
     problem = BridgeProblem(
         grid=_build(cfg, "grid") if grid is None else grid,
         initial=endpoints["initial"],
         final=endpoints["final"],
-        noise=noise_from_config(cfg.noise, cfg.get("diffusion")),
+        noise=noise,
         horizon=cfg.horizon,
-        steps=cfg.steps,
-        confinement=_build(cfg, "confinement"),
+        steps=steps,
+        confinement=confinement,
         interaction=_build(cfg, "interaction"),
     )
     return problem, _axis_names([endpoints["initial"], endpoints["final"]])
@@ -243,6 +259,12 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
         if axes is not None:
             result.model["axes"] = axes
         return result
+    # runs recorded before the estimate existed have no accuracy group: solve them as they were
+    accuracy = (_build(cfg, "accuracy") if "accuracy" in cfg
+                else AccuracyOptions(estimate=False))
+    if not isinstance(accuracy, AccuracyOptions):
+        raise InputError("the accuracy group must build a "
+                         "mfbridge.solvers.accuracy.AccuracyOptions")
     if type(options).__name__ == "DirectOptions":
         from mfbridge.solvers.direct import DirectOptions, solve_direct
 
@@ -266,16 +288,23 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
                         count["offset"] += count["last"]
                     count["last"] = it
                     report(kind, count["offset"] + it, cost, grad)
-            result = solve_direct(problem, options, progress)
+
+            def direct(pr: BridgeProblem, warm: BridgeResult | None,
+                       companion: Callable[[Any], None] | None) -> BridgeResult:
+                if companion is None:
+                    return solve_direct(pr, options, progress)
+                return solve_direct(pr, options, lambda *args: companion(args))
+
+            result = solve_with_estimate(problem, direct, accuracy)
             result.config = OmegaConf.to_container(cfg, resolve=True)
             if axes is not None:
                 result.model["axes"] = axes
             return result
     if not isinstance(options, SolverOptions):
-        raise InputError("the solver group must build a "
-                         "mfbridge.solvers.fixed_point.SolverOptions or a "
-                         "mfbridge.solvers.direct.DirectOptions")
-    result = solve_bridge(problem, options, callback, warm_start=warm_start)
+        raise InputError("the solver group must build a mfbridge.solvers.fixed_point."
+                         "SolverOptions or a mfbridge.solvers.direct.DirectOptions")
+    fixed_point = fixed_point_solve(options, callback, warm_start, problem)
+    result = solve_with_estimate(problem, fixed_point, accuracy)
     result.config = OmegaConf.to_container(cfg, resolve=True)
     if not result.stopping:
         result.stopping = {"quantity": "self-consistency residual and marginal error (both "

@@ -48,6 +48,7 @@ from typing import Any
 import numpy as np
 
 from mfbridge.errors import DiskFullError, InputError, MFBridgeError, RunStatusWarning
+from mfbridge.model.endpoints import box_text
 from mfbridge.result import COMPLETE_FILE, BridgeResult, disk_full
 from mfbridge.runs import folders, records
 from mfbridge.runs.api import CONF_DIR, solve
@@ -280,6 +281,15 @@ def _report(result: BridgeResult) -> None:
                     "%.3g to the returned one, mean at T/2 %s", alt.start,
                     alt.status.replace("_", " "), alt.cost, alt.distance,
                     np.array2string(alt.mean[len(alt.mean) // 2], precision=4))
+    # the grid (fitted by default: model.fitted_grid), the discretisation-error estimate
+    # (mfbridge.solvers.accuracy) and the grid advice
+    grid = result.grid
+    log.log(level, "grid: %s cells on %s, %d time steps", " x ".join(map(str, grid.shape)),
+            box_text(grid.lower, grid.upper, ".4g"), len(result.times) - 1)
+    for line in result.error.lines() if result.error is not None else []:
+        log.log(level, "%s", line)
+    for line in result.advice:
+        log.warning("%s", line)
 
 
 def _record_end(out: Path, record: records.RunRecord, exc: BaseException,

@@ -32,8 +32,13 @@ def _title(result: BridgeResult) -> str:
     mobility = model.get("mobility")
     if isinstance(mobility, dict) and mobility.get("name"):
         extra = f" ({mobility['name']} mobility, total mass {model.get('total_mass', 1.0):g})"
-    return (f"{result.method} bridge{extra}, σ = {result.noise:g}, T = {result.horizon:g}:  "
+    text = (f"{result.method} bridge{extra}, σ = {result.noise:g}, T = {result.horizon:g}:  "
             f"J = {result.cost:.5g}")
+    if result.error is not None:
+        text += f"\n{result.error.describe()}"
+    if result.status != "converged":
+        text += f"  [{result.status.replace('_', ' ')}]"
+    return text
 
 
 def axis_names(result: BridgeResult) -> list[str]:

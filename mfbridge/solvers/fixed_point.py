@@ -57,7 +57,8 @@ from mfbridge.numerics.reference import (
     faces,
 )
 from mfbridge.result import BridgeResult
-from mfbridge.solvers import multistart, small_noise
+from mfbridge.solvers import multistart, sanity, small_noise
+from mfbridge.solvers.cost import bridge_cost
 from mfbridge.solvers.stopping import MarginalStall
 
 METHODS = ("optimal", "frozen")
@@ -487,6 +488,11 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
         result = _result(bridge, solved, ref, outcome.v_bar, options, route, status, message,
                          it, residual, history,
                          {"solve": solve_seconds, "total": time.perf_counter() - start_time})
+    if status == "converged":
+        # the cell Péclet number is the chain's limit, not the Gaussian steps' (small_noise)
+        peclet = (small_noise.cell_peclet(problem, solved.p, solved.phi, solved.log_h)
+                  if bridge.kernel == "chain" else 0.0)
+        sanity.gate(problem, result, options.tol, peclet, frozen=options.method == "frozen")
     if options.starts > 1:
         result.start = "cold" if warm_start is None else "warm"
         result = _other_starts(problem, options, route, result, callback)
@@ -582,27 +588,15 @@ def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: n
     grid = problem.grid
     noise = problem.noise
     sol = s.sol
-    # J evaluated on the flow: (1/2 sigma^2) int int |u|^2 rho, with u rho the net flux of the
-    # bridge minus that of the reference at the same density (Scharfetter-Gummel fluxes). The
-    # path-space KL of the chain agrees to O(h^2) only while the cell Peclet number |u| h / D is
-    # small; this form stays accurate at small noise, where the chain's jump statistics are not
-    # Gaussian in the far tail.
-    if bridge.kernel == "gaussian":  # the chain's KL and node fluxes (small_noise docstring)
-        cost, kinetic, drift = small_noise.gaussian_cost(problem, sol, ref, bridge.omega, s.p,
-                                                         s.log_h, s.phi)
-    else:
-        bridge_flux, reference_flux = _net_fluxes(bridge, s)
-        control_flux = tuple(b - r for b, r in zip(bridge_flux, reference_flux, strict=True))
-        # J and the two flux parts by one quadrature (observables.flux_action): with j the
-        # bridge's flux and r = -rho grad(dF/drho) the reference's, |j - r|^2 = |j|^2 - 2 j.r +
-        # |r|^2 and the cross term integrates to (F(nu) - F(mu))/sigma^2 in the continuum
-        # (continuity equation, no-flux walls), so J = kinetic + drift + free-energy change up
-        # to discretisation error.
-        cost, kinetic, drift = (observables.flux_action(flux, s.p, grid, bridge.omega, noise)
-                                for flux in (control_flux, bridge_flux, reference_flux))
-    mean, cov = observables.moments(s.p, grid)
+    # J evaluated on the flow in flux form, at the step midpoints (mfbridge.solvers.cost); with
+    # the Gaussian steps the chain's KL (small_noise docstring)
     fe = observables.free_energy(s.p, grid, noise, bridge.confinement, bridge.pair)
-    delta_f = float(fe[-1] - fe[0]) / noise**2
+    if bridge.kernel == "gaussian":
+        parts = small_noise.gaussian_cost(problem, sol, ref, bridge.omega, s.p, s.log_h, s.phi,
+                                          fe[-1] - fe[0])
+    else:
+        parts = bridge_cost(grid, noise, bridge.dt, s.phi, ref, sol, fe[-1] - fe[0])
+    mean, cov = observables.moments(s.p, grid)
     model = {
         "confinement": _describe(problem.confinement),
         "interaction": _describe(problem.interaction),
@@ -619,10 +613,10 @@ def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: n
         cov=cov,
         free_energy=fe,
         entropy=observables.entropy(s.p, grid),
-        cost=cost,
-        cost_kinetic=kinetic,
-        cost_drift=drift,
-        cost_free_energy=delta_f,
+        cost=parts.cost,
+        cost_kinetic=parts.kinetic,
+        cost_drift=parts.drift,
+        cost_free_energy=parts.free_energy,
         noise=noise,
         method=options.method,
         route=route,
@@ -639,23 +633,6 @@ def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: n
     )
 
 
-def _net_fluxes(bridge: _Bridge, s: _Solved
-                ) -> tuple[tuple[np.ndarray, ...], tuple[np.ndarray, ...]]:
-    """Net mass per unit time across each face at each node: of the bridge, and of the reference
-    chain at the same density.
-
-    Controlled rates are :math:`q_{ij}h_j/h_i`, so the bridge's flow i → j is
-    :math:`p_i q_{ij} h_j/h_i = q_{ij} f_i h_j`; the reference's is :math:`p_i q_{ij}`.
-    """
-    rates = edge_rates(s.phi, bridge.grid, bridge.problem.noise)
-    bridge_flux, reference_flux = [], []
-    for a in range(bridge.grid.dim):
-        lo_t, hi_t = faces(s.p.ndim, 1 + a, bridge.shape[a])
-        fwd, bwd = rates.forward[a], rates.backward[a]
-        bridge_flux.append(fwd * np.exp(s.log_f[lo_t] + s.log_h[hi_t])
-                           - bwd * np.exp(s.log_f[hi_t] + s.log_h[lo_t]))
-        reference_flux.append(fwd * s.p[lo_t] - bwd * s.p[hi_t])
-    return tuple(bridge_flux), tuple(reference_flux)
 
 
 def _describe(obj: object) -> dict[str, object]:

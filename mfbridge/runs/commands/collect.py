@@ -4,9 +4,10 @@ Reads every job folder under ``SWEEP_DIR`` (see :func:`mfbridge.runs.records.sca
 writes, into ``SWEEP_DIR/collected/`` (or ``--out``):
 
 * ``runs.csv``: one row per run: the swept values, status, cost and its parts, iterations,
-  residual, runtime and a few summaries of the flow (mean and standard deviation of the first
-  coordinate at T/2, entropy at T/2); failed and unfinished runs have a row with their status
-  and problem and empty numbers;
+  residual, the discretisation-error estimate of J (estimated error, GCI, extrapolated J,
+  observed order; empty when not estimated), runtime and a few summaries of the flow (mean and
+  standard deviation of the first coordinate at T/2, entropy at T/2); failed and unfinished
+  runs have a row with their status and problem and empty numbers;
 * ``sweep.nc``: the complete runs' results combined into one dataset with the swept parameters
   as dimensions (missing combinations are NaN);
 * ``cost.png`` (cost against each swept parameter), ``mean_paths.png`` (mean paths and
@@ -36,6 +37,9 @@ from mfbridge.runs.records import RunEntry, scan_sweep
 
 SCALARS = ("cost", "cost_kinetic", "cost_drift", "cost_free_energy", "iterations", "residual",
            "marginal_error")
+# columns from the discretisation-error estimate: |J_h - J| estimated, Roache's GCI (relative),
+# Richardson's extrapolated J, the observed order (NaN: not estimated)
+ESTIMATE = ("cost_error", "cost_gci", "cost_extrapolated", "observed_order")
 FIELDS = ("density", "control", "correction", "mean", "cov", "free_energy", "entropy")
 
 
@@ -106,6 +110,12 @@ def _summaries(result: Any) -> dict[str, float]:
     out["std_mid"] = float(np.sqrt(result.cov[mid, 0, 0]))
     out["entropy_mid"] = float(result.entropy[mid])
     out["runtime_s"] = float(result.timings.get("total", math.nan))
+    error = result.error
+    # the discretisation-error estimate (mfbridge.solvers.accuracy); NaN when not estimated
+    out["cost_error"] = error.cost_error if error is not None else math.nan
+    out["cost_gci"] = error.gci if error is not None else math.nan
+    out["cost_extrapolated"] = error.cost_extrapolated if error is not None else math.nan
+    out["observed_order"] = error.observed_order if error is not None else math.nan
     return out
 
 
@@ -186,7 +196,7 @@ def write_table(path: Path, keys: list[str], rows: list[Row]) -> Path:
     """``runs.csv`` (written atomically)."""
     from mfbridge.result import _atomic_write
 
-    numbers = [*SCALARS, "runtime_s", "mean_mid", "std_mid", "entropy_mid"]
+    numbers = [*SCALARS, *ESTIMATE, "runtime_s", "mean_mid", "std_mid", "entropy_mid"]
     header = ["run", *keys, "status", *numbers, "problem"]
 
     def write(tmp: str) -> None:
@@ -214,6 +224,8 @@ def combined_dataset(keys: list[str], rows: list[Row], results: list[Any]) -> An
             ds[name] = float(getattr(result, name))
         ds["converged"] = float(result.converged)
         ds["runtime_s"] = row.numbers.get("runtime_s", math.nan)
+        for name in ESTIMATE:
+            ds[name] = row.numbers.get(name, math.nan)
         ds.attrs = {}
         parts.append(ds.expand_dims({k: [row.params[k]] for k in keys}))
     if not parts:
@@ -253,8 +265,9 @@ def _in_order(rows: list[Row], results: list[Any], keys: list[str]
 
 
 def plot_cost(path: Path, keys: list[str], rows: list[Row]) -> Path:
-    """Cost against each swept parameter (one line per value of the other parameters);
-    runs that did not converge are drawn as open red circles."""
+    """Cost against each swept parameter (one line per value of the other parameters), with
+    the estimated discretisation error of J as error bars; runs that did not converge are
+    drawn as open red circles."""
     import matplotlib
 
     matplotlib.use("Agg")
@@ -275,7 +288,12 @@ def plot_cost(path: Path, keys: list[str], rows: list[Row]) -> Path:
             order = sorted(range(len(xs)), key=lambda i: _value_key(xs[i]))
             xs = [xs[i] for i in order]
             ys = [group[i].numbers["cost"] for i in order]
-            ax.plot(xs, ys, marker="o", label=label or None)
+            (line,) = ax.plot(xs, ys, marker="o", label=label or None)
+            # the estimated discretisation error of J (error bars; none when not estimated)
+            errs = [group[i].numbers.get("cost_error", math.nan) for i in order]
+            if any(math.isfinite(e) for e in errs):
+                ax.errorbar(xs, ys, yerr=[e if math.isfinite(e) else 0.0 for e in errs],
+                            fmt="none", ecolor=line.get_color(), capsize=3)
             bad = [(x, y) for x, y, i in zip(xs, ys, order, strict=True)
                    if group[i].status != "converged"]
             if bad:
@@ -406,7 +424,9 @@ def plot_densities(path: Path, keys: list[str], rows: list[Row], results: list[A
             ax.set_ylabel("x1")
         ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(4))
         flag = "" if result.converged else f" ({result.status.replace('_', ' ')})"
-        ax.set_title(f"{_label(row, keys)}\nJ = {result.cost:.5g}{flag}", fontsize=8)
+        error = result.error
+        spread = (f" ± {error.cost_error:.2g}" if error is not None and error.available else "")
+        ax.set_title(f"{_label(row, keys)}\nJ = {result.cost:.5g}{spread}{flag}", fontsize=8)
     if image is not None:
         dim = res[0].grid.dim
         what = "ρ(t, x)" if dim == 1 else "ρ at T/2" if dim == 2 else "x0-x1 marginal at T/2"
