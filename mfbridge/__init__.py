@@ -39,9 +39,9 @@ from mfbridge.model.series import SeriesProblem, Snapshot
 from mfbridge.result import BridgeResult
 from mfbridge.runs.api import build_problem, check, compose, load, solve
 from mfbridge.runs.fitting import compare_fits, fit
+from mfbridge.solvers.accuracy import AccuracyOptions, solve_and_estimate
 from mfbridge.solvers.comparison import compare_models
 from mfbridge.solvers.fit import FitOptions, FitParameter, fit_series
-from mfbridge.solvers.accuracy import AccuracyOptions, solve_and_estimate
 from mfbridge.solvers.fixed_point import Iteration, SolverOptions, solve_bridge
 from mfbridge.solvers.linear_quadratic import LQBridge, lq_bridge
 from mfbridge.solvers.series import solve_series

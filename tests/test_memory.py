@@ -50,6 +50,14 @@ def test_refused_before_allocating(override: str, needs: str,
     assert "fewer cells (grid.shape)" in message and "nothing was allocated" in message
 
 
+def test_steps_chosen_by_the_run_are_estimated_too(monkeypatch: pytest.MonkeyPatch) -> None:
+    """With ``steps: null`` (the default) the steps come from the confinement; the estimate uses
+    them instead of skipping the check (refused here at an available memory of 1 kB)."""
+    monkeypatch.setattr(resources, "available_memory", lambda: (1000, "test"))
+    with pytest.raises(MemoryRefusal, match="can get 1 kB"):
+        mfbridge.solve(mfbridge.compose(["figures=false"]))
+
+
 def test_dense_route_refusal_advises_the_operator_route(monkeypatch: pytest.MonkeyPatch
                                                         ) -> None:
     monkeypatch.setattr(resources, "available_memory", lambda: (100_000_000, "test"))

@@ -29,6 +29,7 @@ confinement where the endpoints have their mass.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
@@ -90,12 +91,12 @@ def _parts(endpoint: Endpoint) -> tuple[Endpoint, ...]:
     return tuple(getattr(endpoint, "components", (endpoint,)))
 
 
-def _endpoint_reach(initial: Endpoint, final: Endpoint, spreads: float = ENDPOINT_REACH
+def _endpoint_reach(laws: Sequence[Endpoint], spreads: float = ENDPOINT_REACH
                     ) -> tuple[np.ndarray, np.ndarray]:
     """Per axis, the hull of mean ± ``spreads`` standard deviations of every Gaussian (or
-    mixture component) endpoint, and of the samples' range + 5 kernel widths of the others."""
+    mixture component) law, and of the samples' range + 5 kernel widths of the others."""
     lows, highs = [], []
-    for e in (initial, final):
+    for e in laws:
         if all(isinstance(c, Gaussian) for c in _parts(e)):
             for c in _parts(e):
                 sd = np.sqrt(np.clip(np.diag(np.atleast_2d(c.cov())), 0.0, None))
@@ -124,7 +125,7 @@ def fitted_grid(initial: Endpoint, final: Endpoint, confinement: Confinement | N
         raise InputError(f"cells_per_width must be a positive number or null, got "
                          f"{cells_per_width!r}")
     sigma = checked_noise(noise, diffusion)
-    lower, upper = _endpoint_reach(initial, final)
+    lower, upper = _endpoint_reach([initial, final])
     dim = len(lower)
     reach = confinement_reach(confinement, sigma, dim)
     if reach is not None:
@@ -182,14 +183,14 @@ def _curvature(values: Any, points: np.ndarray, axis: int, delta: float) -> np.n
             + np.asarray(values(points - step), dtype=float)) / delta**2
 
 
-def fitted_steps(initial: Endpoint, final: Endpoint, confinement: Confinement | None,
+def fitted_steps(laws: Sequence[Endpoint], confinement: Confinement | None,
                  horizon: float) -> int:
     r"""Time steps K for the horizon T: :math:`K = \lceil T\lambda/0.077\rceil`, clipped to
-    ``STEPS``, with λ the largest curvature |∂²U| within 2 standard deviations of the endpoints
-    (the rate at which the confinement relaxes the flow; see ``STEP_RATE``). The interaction is
-    left out: its curvature at short range (Morse's core) did not show in the measured time
-    errors."""
-    lower, upper = _endpoint_reach(initial, final, BULK)
+    ``STEPS``, with λ the largest curvature |∂²U| within 2 standard deviations of the ``laws``
+    (the endpoints, or every snapshot of a series over its span T): the rate at which the
+    confinement relaxes the flow (see ``STEP_RATE``). The interaction is left out: its
+    curvature at short range (Morse's core) did not show in the measured time errors."""
+    lower, upper = _endpoint_reach(laws, BULK)
     dim = len(lower)
     if confinement is None:
         return STEPS[0]

@@ -40,7 +40,7 @@ from mfbridge.result import (
     read_marker,
 )
 from mfbridge.solvers.accuracy import AccuracyOptions, fixed_point_solve, solve_with_estimate
-from mfbridge.solvers.fixed_point import Iteration, SolverOptions, solve_bridge
+from mfbridge.solvers.fixed_point import Iteration, SolverOptions
 from mfbridge.solvers.series import SeriesResult, solve_series
 
 CONF_DIR = Path(__file__).resolve().parents[2] / "conf"
@@ -128,56 +128,85 @@ def _check_entries(cfg: Any) -> None:
             raise InputError(f"the configuration has no {key!r} entry")
 
 
+def _laws(endpoints: Any) -> list[Any] | None:
+    """The laws of the built endpoints group: initial and final, or every snapshot's; None when
+    the group is malformed (the problem's own checks say how)."""
+    if not hasattr(endpoints, "keys"):
+        return None
+    if set(endpoints) == {"snapshots"}:
+        return [s["law"] if hasattr(s, "keys") else getattr(s, "law", None)
+                for s in endpoints["snapshots"]]
+    if set(endpoints) == {"initial", "final"}:
+        return [endpoints["initial"], endpoints["final"]]
+    return None
+
+
+def _span(snapshots: Any) -> float | None:
+    """The time a series of snapshots spans (None unless every time is a number)."""
+    times = [s.get("time") if hasattr(s, "get") else getattr(s, "time", None)
+             for s in snapshots]
+    if not times or not all(is_real_number(t) for t in times):
+        return None
+    return float(max(times) - min(times))
+
+
+def _steps(cfg: Any, laws: list[Any], confinement: Any, horizon: Any) -> Any:
+    """``cfg.steps``, or with ``steps: null`` the number chosen from the confinement's curvature
+    where the laws have their mass over ``horizon`` (:func:`mfbridge.model.fitted_grid.
+    fitted_steps`)."""
+    if cfg.steps is not None:
+        return cfg.steps
+    from mfbridge.model.endpoints import Endpoint
+    from mfbridge.model.fitted_grid import fitted_steps
+
+    if not all(isinstance(e, Endpoint) for e in laws):
+        raise InputError("steps=null chooses the time steps from endpoint objects; with "
+                         "arrays of masses give steps=K")
+    if not (is_real_number(horizon) and horizon > 0):
+        return None  # the problem's own check names the bad horizon or times
+    return fitted_steps(laws, confinement, horizon)
+
+
 def _problem_and_axes(cfg: Any, grid: Grid | None = None
                       ) -> tuple[BridgeProblem | SeriesProblem, list[str] | None]:
     """The problem of ``cfg`` (on ``grid`` when it is built already) and the names of its space
     axes (data-file columns) if any."""
     _check_entries(cfg)
     endpoints = _build(cfg, "endpoints")
-    if set(endpoints) == {"snapshots"}:
-        snapshots = list(endpoints["snapshots"])
-        series = SeriesProblem(
-            grid=_build(cfg, "grid") if grid is None else grid,
-            snapshots=snapshots,
-            noise=noise_from_config(cfg.noise, cfg.get("diffusion")),
-            steps=cfg.steps,
-            confinement=_build(cfg, "confinement"),
-            interaction=_build(cfg, "interaction"),
-        )
-        laws = [s["law"] if hasattr(s, "keys") else getattr(s, "law", None) for s in snapshots]
-        return series, _axis_names(laws)
-    if set(endpoints) != {"initial", "final"}:
-        raise InputError("the endpoints group must define exactly 'initial' and 'final', or "
-                         "'snapshots' (a list of time and law)")
-    from mfbridge.model.samples import check_same_dimension
-
-    check_same_dimension(endpoints["initial"], endpoints["final"])
     noise = noise_from_config(cfg.noise, cfg.get("diffusion"))
     from mfbridge.model.fitted_grid import checked_noise
 
     checked_noise(noise)  # before the grid, which may be fitted to the noise
     confinement = _build(cfg, "confinement")
-    steps = cfg.steps
-    if steps is None:  # chosen from the confinement's curvature where the endpoints are
-        from mfbridge.model.endpoints import Endpoint
-        from mfbridge.model.fitted_grid import fitted_steps
+    laws = _laws(endpoints)
+    if set(endpoints) == {"snapshots"}:
+        snapshots = list(endpoints["snapshots"])
+        series = SeriesProblem(
+            grid=_build(cfg, "grid") if grid is None else grid,
+            snapshots=snapshots,
+            noise=noise,
+            steps=_steps(cfg, laws or [], confinement, _span(snapshots)),
+            confinement=confinement,
+            interaction=_build(cfg, "interaction"),
+        )
+        return series, _axis_names(laws or [])
+    if laws is None:
+        raise InputError("the endpoints group must define exactly 'initial' and 'final', or "
+                         "'snapshots' (a list of time and law)")
+    from mfbridge.model.samples import check_same_dimension
 
-        if not all(isinstance(e, Endpoint) for e in endpoints.values()):
-            raise InputError("steps=null chooses the time steps from endpoint objects; with "
-                             "arrays of masses give steps=K")
-        steps = fitted_steps(endpoints["initial"], endpoints["final"], confinement,
-                             cfg.horizon)
+    check_same_dimension(endpoints["initial"], endpoints["final"])
     problem = BridgeProblem(
         grid=_build(cfg, "grid") if grid is None else grid,
         initial=endpoints["initial"],
         final=endpoints["final"],
         noise=noise,
         horizon=cfg.horizon,
-        steps=steps,
+        steps=_steps(cfg, laws, confinement, cfg.horizon),
         confinement=confinement,
         interaction=_build(cfg, "interaction"),
     )
-    return problem, _axis_names([endpoints["initial"], endpoints["final"]])
+    return problem, _axis_names(laws)
 
 
 def _check_memory(cfg: Any, grid: Grid, options: SolverOptions) -> None:
@@ -191,10 +220,14 @@ def _check_memory(cfg: Any, grid: Grid, options: SolverOptions) -> None:
     steps, horizon = cfg.steps, cfg.horizon
     snapshots = cfg.endpoints.get("snapshots") if hasattr(cfg.endpoints, "get") else None
     if snapshots:  # a series: the steps span its times (horizon is not used)
-        times = [s.get("time") if hasattr(s, "get") else None for s in snapshots]
-        if not all(is_real_number(t) for t in times):
+        horizon = _span(snapshots)
+        if horizon is None:
             return
-        horizon = max(times) - min(times)
+    if steps is None:  # chosen from the laws and the confinement (cheap objects)
+        laws = _laws(_build(cfg, "endpoints"))
+        if laws is None or not (is_real_number(horizon) and horizon > 0):
+            return
+        steps = _steps(cfg, laws, _build(cfg, "confinement"), horizon)
     noise = noise_from_config(cfg.noise, cfg.get("diffusion"))
     if not (isinstance(steps, int) and not isinstance(steps, bool) and steps >= 1
             and is_real_number(horizon) and horizon > 0 and is_real_number(noise) and noise > 0):
