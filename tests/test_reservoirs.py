@@ -214,7 +214,8 @@ def test_every_reservoirs_option_builds_and_the_config_runs():
         built = instantiate(compose([f"reservoirs={path.stem}"]).reservoirs)
         assert built is None or isinstance(built, Reservoirs), path.stem
     cfg = compose(["solver=direct", "mobility=exclusion", "reservoirs=open_chain",
-                   "grid=line", "grid.lower=0", "grid.upper=1", "grid.shape=16", "steps=4", "horizon=0.1",
+                   "grid=line", "grid.lower=0", "grid.upper=1", "grid.shape=16", "steps=4",
+                   "horizon=0.1",
                    "endpoints=gaussians", "endpoints.initial.mean=0.5",
                    "endpoints.initial.cov=0.02", "endpoints.final.mean=0.5",
                    "endpoints.final.cov=0.02", "confinement=none", "interaction=none",

@@ -268,6 +268,9 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
                          "mfbridge.solve_bridge(problem, options)")
     check_config(cfg)
     _check_entries(cfg)
+    from mfbridge.model.fitted_grid import checked_noise
+
+    checked_noise(noise_from_config(cfg.noise, cfg.get("diffusion")))  # the grid may use it
     grid = _build(cfg, "grid")
     options = _build(cfg, "solver")
     if isinstance(options, SolverOptions) and isinstance(grid, Grid):
