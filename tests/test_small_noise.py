@@ -85,9 +85,10 @@ def test_gaussian_cost_is_consistent_with_the_chains_at_second_order():
     # the same rate function: their difference must fall like h^2 + dt^2 when h and dt are
     # halved together (common practice, no source: two consistent second-order schemes). Both
     # are also checked against the closed form (Bunne, Hsieh, Cuturi & Krause, AISTATS 2023).
-    # Measured relative differences 2.45e-2, 6.80e-3, 1.74e-3 at 32 x 8, 64 x 16, 128 x 32
-    # (ratios 3.60, 3.91; 3.98 at 256 x 64); errors against the closed form at 128 x 32:
-    # chain -9.1e-4, Gaussian +8.4e-4.
+    # Measured relative differences 4.71e-2, 1.28e-2, 3.27e-3 at 32 x 8, 64 x 16, 128 x 32
+    # (ratios 3.67, 3.92; 3.98 at 256 x 64); errors against the closed form at 128 x 32:
+    # chain -2.44e-3 (J at the step midpoints, solvers/cost.py: its time error -0.84/K^2 adds
+    # to the space error, where the trapezoid rule's +0.73/K^2 gave -9.1e-4), Gaussian +8.4e-4.
     exact = exact_cost(1.0)
     gaps, errors = [], {}
     for cells, steps in ((32, 8), (64, 16), (128, 32)):
@@ -101,8 +102,8 @@ def test_gaussian_cost_is_consistent_with_the_chains_at_second_order():
         gaps.append((costs["gaussian"] - costs["chain"]) / exact)
         errors = {k: abs(c / exact - 1) for k, c in costs.items()}
     assert gaps[0] / gaps[1] > 3.2 and gaps[1] / gaps[2] > 3.5, gaps
-    assert abs(gaps[2]) < 3.5e-3, gaps
-    assert errors["chain"] < 2e-3 and errors["gaussian"] < 2e-3, errors
+    assert abs(gaps[2]) < 6.5e-3, gaps
+    assert errors["chain"] < 5e-3 and errors["gaussian"] < 2e-3, errors
 
 
 def test_two_dimensional_bridge_with_gaussian_steps_matches_the_exact_bridge():
