@@ -67,12 +67,14 @@ NAMES = ["confinement.stiffness", "interaction.strength", "interaction.range", "
 
 def test_envelope_gradient_matches_central_differences_1d() -> None:
     # measured |envelope - central difference| at 64 cells x 20 steps and 128 x 40 (gradients
-    # -0.060, 0.46, -0.27, -6.16): stiffness 9.8e-4 -> 3.9e-4, strength 4.2e-2 -> 8.8e-3,
-    # range 1.7e-1 -> 3.4e-2, noise 9.9e-2 -> 2.9e-2: second order (ratios 2.5 to 4.9)
+    # -0.062, 0.45, -0.23, -6.16), J and its gradient both at the step midpoints
+    # (mfbridge.solvers.cost): stiffness 5.0e-3 -> 1.29e-3, strength 4.8e-3 -> 1.15e-3, range
+    # 6.1e-3 -> 1.68e-3, noise 1.6e-2 -> 5.75e-3: second order (ratios 2.9 to 4.2). With the
+    # trapezoid rule on the nodes, used before: 3.9e-4, 8.8e-3, 3.4e-2, 2.9e-2 at 128 x 40.
     coarse = _gaps(_problem_1d(64, 20), NAMES)
     fine = _gaps(_problem_1d(128, 40), NAMES)
-    measured = {"confinement.stiffness": 3.9e-4, "interaction.strength": 8.8e-3,
-                "interaction.range": 3.4e-2, "noise": 2.9e-2}
+    measured = {"confinement.stiffness": 1.29e-3, "interaction.strength": 1.15e-3,
+                "interaction.range": 1.68e-3, "noise": 5.75e-3}
     for name in NAMES:
         gap_coarse = abs(coarse[name][0] - coarse[name][1])
         gap_fine = abs(fine[name][0] - fine[name][1])

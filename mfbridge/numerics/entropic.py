@@ -125,8 +125,9 @@ def forward_sweep(ref: FrozenReference, log_a: np.ndarray) -> np.ndarray:
     return log_f
 
 
-def midpoint_log_potentials(ref: FrozenReference, sol: EntropicSolution,
-                            half_steps: list[StepOperator]) -> tuple[np.ndarray, np.ndarray]:
+def midpoint_log_potentials(log_f_nodes: np.ndarray, log_g_nodes: np.ndarray,
+                            half_steps: list[StepOperator], log_domain: bool = False
+                            ) -> tuple[np.ndarray, np.ndarray]:
     r"""log F and log G at the step midpoints, shape (K, *shape) each.
 
     Within step k the bridge is the h-transform of the chain of that step, so its potentials at
@@ -134,15 +135,17 @@ def midpoint_log_potentials(ref: FrozenReference, sol: EntropicSolution,
     :math:`F = M_{1/2}^\top (E_k F_k)`, :math:`G = M_{1/2} (E_{k+1} G_{k+1})`, with
     ``half_steps[k]`` the operator :math:`M_{1/2} \approx e^{\Delta t Q_k/2}`; the marginal
     there is F G (it sums to 1 up to the splitting error of the half steps in 2D and 3D).
+    ``log_f_nodes``, ``log_g_nodes``: :math:`\log(E_k F_k)` and :math:`\log(E_k G_k)` at the
+    nodes, (K+1, *shape) (``sol.log_forward + ref.log_weights``, ``sol.log_backward +
+    ref.log_weights``); ``log_domain``: propagate exactly in the log domain.
     """
-    k_steps = ref.n_steps
-    shape = ref.log_weights.shape[1:]
+    k_steps = len(half_steps)
+    shape = log_f_nodes.shape[1:]
     log_f = np.empty((k_steps, *shape))
     log_g = np.empty_like(log_f)
     for k, half in enumerate(half_steps):
-        log_f[k] = log_step(half, sol.log_forward[k] + ref.log_weights[k], True, ref.log_domain)
-        log_g[k] = log_step(half, sol.log_backward[k + 1] + ref.log_weights[k + 1], False,
-                            ref.log_domain)
+        log_f[k] = log_step(half, log_f_nodes[k], True, log_domain)
+        log_g[k] = log_step(half, log_g_nodes[k + 1], False, log_domain)
     return log_f, log_g
 
 

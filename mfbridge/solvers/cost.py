@@ -37,6 +37,7 @@ from mfbridge.model.problem import BridgeProblem
 from mfbridge.numerics import entropic, observables
 from mfbridge.numerics.propagator import StepOperator
 from mfbridge.numerics.reference import EdgeRates, PairField, edge_rates, faces
+from mfbridge.result import BridgeResult
 
 
 @dataclass(frozen=True)
@@ -105,10 +106,40 @@ def midpoint_flow(grid: Grid, noise: float, dt: float, phi: np.ndarray,
     step midpoints, as in the sweeps (Φ is affine in the masses, so the mean of the nodal Φ is
     Φ of the mean masses).
     """
+    return _midpoint_flow(grid, noise, dt, phi, sol.log_forward + ref.log_weights,
+                          sol.log_backward + ref.log_weights, ref.log_domain)
+
+
+def result_midpoint_flow(problem: BridgeProblem, result: BridgeResult) -> MidpointFlow:
+    """:func:`midpoint_flow` of a result of the outer loop with the jump chain, rebuilt from
+    what it stores: the node potentials ``log_forward`` = log F_k + log E_k − log H_k and
+    ``log_backward`` = log G_k + log H_k, with log E_k = −ω_k V_k (trapezoid weights ω) and
+    log H_k = −(Δt/2) V_k (0 at k = K) the share of V_k given to the backward potential, V =
+    ``correction``; Φ from the flow's masses (used by :mod:`mfbridge.solvers.sensitivity`)."""
+    grid = problem.grid
+    dt = problem.dt
+    expand = (-1, *([1] * grid.dim))
+    omega = observables.trapezoid_weights(problem.times).reshape(expand)
+    half = np.full(problem.steps + 1, 0.5 * dt)
+    half[-1] = 0.0
+    v = np.asarray(result.correction, dtype=float)
+    log_half = -half.reshape(expand) * v
+    p = result.masses
+    phi = (np.asarray(problem.confinement.value(grid.points), dtype=float)
+           + PairField(grid, problem.interaction)(p))
+    return _midpoint_flow(grid, problem.noise, dt, phi, result.log_forward + log_half,
+                          result.log_backward - log_half - omega * v, True)
+
+
+def _midpoint_flow(grid: Grid, noise: float, dt: float, phi: np.ndarray,
+                   log_f_nodes: np.ndarray, log_g_nodes: np.ndarray,
+                   log_domain: bool) -> MidpointFlow:
+    """:func:`midpoint_flow` from log(E_k F_k) and log(E_k G_k) at the nodes (K+1, *shape)."""
     rates = edge_rates(0.5 * (phi[:-1] + phi[1:]), grid, noise)
     halves = [StepOperator(_step_rates(rates, k), 0.5 * dt, grid.shape)
-              for k in range(ref.n_steps)]
-    log_f, log_g = entropic.midpoint_log_potentials(ref, sol, halves)
+              for k in range(len(phi) - 1)]
+    log_f, log_g = entropic.midpoint_log_potentials(log_f_nodes, log_g_nodes, halves,
+                                                    log_domain)
     axes = tuple(range(1, grid.dim + 1))
     with np.errstate(under="ignore"):
         p = np.exp(log_f + log_g)

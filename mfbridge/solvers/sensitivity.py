@@ -24,7 +24,11 @@ On the grid the reported J is the action of the control flux, face by face
 
 with :math:`j^{\rm b}` the bridge's net flux, :math:`q^\pm` the Scharfetter–Gummel rates of
 :math:`\Phi = U + W\star p` (:mod:`mfbridge.numerics.reference`) and :math:`\bar p` the mean
-mass of the two cells. Holding the flow (:math:`p` and :math:`j^{\rm b}`) fixed,
+mass of the two cells, all at the step midpoints with weights :math:`w_t = \Delta t` (the rule
+of :mod:`mfbridge.solvers.cost`; the flow there is rebuilt from the result's stored potentials
+and V by :func:`~mfbridge.solvers.cost.result_midpoint_flow`; Φ and its derivatives are the
+means of their two nodes, being affine in the masses). Holding the flow (:math:`p` and
+:math:`j^{\rm b}`) fixed,
 
 .. math::
 
@@ -63,10 +67,10 @@ from mfbridge.numerics.reference import (
     PairField,
     bernoulli,
     bernoulli_derivative,
-    edge_rates,
     faces,
 )
 from mfbridge.result import BridgeResult
+from mfbridge.solvers.cost import result_midpoint_flow
 
 __all__ = ["cost_gradient"]
 
@@ -115,13 +119,14 @@ def cost_gradient(problem: BridgeProblem, result: BridgeResult,
             "holds only at the minimiser"), stacklevel=2)
     sigma = problem.noise
     beta, diffusivity = 2.0 / sigma**2, 0.5 * sigma**2
-    p = result.masses
-    lf, lh = result.log_forward, result.log_backward
-    conf = np.asarray(problem.confinement.value(grid.points), dtype=float)
+    # the flow at the step midpoints, where the reported J is evaluated (mfbridge.solvers.cost)
+    flow = result_midpoint_flow(problem, result)
+    p = flow.p
+    nodes = result.masses
     pair = PairField(grid, problem.interaction)
-    phi = conf + pair(p)
-    rates = edge_rates(phi, grid, sigma)
-    weights = observables.trapezoid_weights(problem.times)
+    phi_nodes = np.asarray(problem.confinement.value(grid.points), dtype=float) + pair(nodes)
+    phi = 0.5 * (phi_nodes[1:] + phi_nodes[:-1])
+    weights = np.full(p.shape[0], problem.dt)
     dphi: dict[str, np.ndarray] = {}
     for name in names:
         part, _, field = name.partition(".")
@@ -129,19 +134,20 @@ def cost_gradient(problem: BridgeProblem, result: BridgeResult,
             dphi[name] = np.broadcast_to(
                 parameter_derivative(problem.confinement, field, grid.points), p.shape)
         elif part == "interaction":
-            dphi[name] = PairField(grid, _Derivative(problem.interaction, field))(p)
+            # ∂W ⋆ p is affine in p: at a step midpoint the mean of its two nodes, as Φ
+            nodal = PairField(grid, _Derivative(problem.interaction, field))(nodes)
+            dphi[name] = 0.5 * (nodal[1:] + nodal[:-1])
     control_flux, dterms = [], {name: np.zeros(p.shape[0]) for name in names}
     for a in range(grid.dim):
         ax = 1 + a
         lo, hi = faces(p.ndim, ax, grid.shape[a])
-        fwd, bwd = rates.forward[a], rates.backward[a]
-        with np.errstate(under="ignore"):
-            jb = fwd * np.exp(lf[lo] + lh[hi]) - bwd * np.exp(lf[hi] + lh[lo])
-        ju = jb - (fwd * p[lo] - bwd * p[hi])
+        ju = flow.bridge_flux[a] - flow.reference_flux[a]
         control_flux.append(ju)
         mean_mass = 0.5 * (p[lo] + p[hi])
         h2 = grid.spacing[a] ** 2
-        factor = np.where(mean_mass > 0, ju * h2 / np.where(mean_mass > 0, mean_mass, 1.0), 0.0)
+        with np.errstate(invalid="ignore", over="ignore"):
+            factor = np.where(mean_mass > 0,
+                              ju * h2 / np.where(mean_mass > 0, mean_mass, 1.0), 0.0)
         z = beta * np.diff(phi, axis=ax)
         for name in names:
             if name in NOISE_NAMES:
