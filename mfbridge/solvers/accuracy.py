@@ -266,7 +266,8 @@ def estimate_error(problem: BridgeProblem, fine: BridgeResult, solve: Solve,
         except OverTime as exc:
             note = f"the companion on {label} stopped: {exc}"
             break
-        except (MFBridgeError, ArithmeticError, ValueError, np.linalg.LinAlgError) as exc:
+        except (MFBridgeError, ArithmeticError, ValueError, RuntimeError,
+                np.linalg.LinAlgError) as exc:  # RuntimeError: e.g. SuperLU's singular factor
             note = f"the companion on {label} failed: {exc}"
             break
         records.append({"shape": list(nxt.grid.shape), "steps": nxt.steps, "cost": res.cost,
