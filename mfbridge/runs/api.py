@@ -209,10 +209,13 @@ def _problem_and_axes(cfg: Any, grid: Grid | None = None
     return problem, _axis_names(laws)
 
 
-def _check_memory(cfg: Any, grid: Grid, options: SolverOptions) -> None:
+def _check_memory(cfg: Any, grid: Grid, options: SolverOptions, kernel: str | None = None
+                  ) -> None:
     """Estimate the solve's peak memory from the sizes alone and refuse it, before anything of
     size n x K is allocated, when the machine cannot give it (:mod:`mfbridge.runs.resources`).
-    Invalid numbers are left to the problem's own checks."""
+    ``kernel``: the reference kernel the solver will use (default: ``options.kernel``, where
+    ``"auto"`` counts as the chain until the problem is built). Invalid numbers are left to the
+    problem's own checks."""
     from mfbridge.model.potentials import NoInteraction
     from mfbridge.runs.resources import check_memory
     from mfbridge.solvers.memory import estimate
@@ -238,7 +241,8 @@ def _check_memory(cfg: Any, grid: Grid, options: SolverOptions) -> None:
     interacting = not isinstance(_build(cfg, "interaction"), NoInteraction)
     need = estimate(grid.shape, grid.spacing, steps, float(horizon), float(noise), route=route,
                     interacting=interacting, method=options.method, anderson=options.anderson,
-                    coupling=options.coupling, starts=options.starts)
+                    coupling=options.coupling, starts=options.starts,
+                    gaussian_steps=(kernel or options.kernel) == "gaussian")
     check_memory(need, coupling=options.coupling)
 
 
@@ -281,6 +285,12 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
         log_unestimated("the direct solver" if type(options).__name__ == "DirectOptions"
                         else f"a grid of type {type(grid).__name__}")
     problem, axes = _problem_and_axes(cfg, grid)
+    if (isinstance(options, SolverOptions) and options.kernel == "auto"
+            and isinstance(problem, BridgeProblem)):
+        from mfbridge.solvers.small_noise import choose_kernel
+
+        if choose_kernel(problem, "auto")[0] == "gaussian":  # its windows, before solving
+            _check_memory(cfg, problem.grid, options, kernel="gaussian")
     if isinstance(problem, SeriesProblem):
         if not isinstance(options, SolverOptions):
             raise InputError("a series of snapshots is solved by the fixed-point solver "

@@ -17,6 +17,18 @@ time and space), the solve holds, beyond what the process holds already:
   bounded by τ σ²/h² × 2, the diffusive exit rate with room for the drift);
 * the dense route and the ``coupling`` option: an n × n kernel and POT's work arrays, measured
   61-64 × 8n² bytes (n = 512, 1024 in 1D; 24 × 24 in 2D): 64 × 8n²;
+* the Gaussian steps (``kernel="gaussian"``, or ``"auto"`` when it picks them;
+  :mod:`mfbridge.numerics.gaussian_step`) instead of the contour factors: per step, direction
+  (forward, backward) and axis a rectangular table of the row-normalised summands, 16 bytes (a
+  weight and an index) per cell times the widest window along that axis, which the noise
+  continuation's early stages (larger σ) stretch to most of the line, or beyond it with the
+  margins; and the next iteration's tables are built while the last ones are alive. Measured
+  largest total of the live tables (1D, σ = 0.1, default continuation, 3-4 iterations) against
+  :math:`T = 2K \cdot 16\, n \sum_a n_a`: 40 MB / 34 MB (256 cells, K = 16), 89 / 105 MB
+  (320, 32), 893 MB / 1.07 GB (1024, 32; peak RSS growth 0.96 GB where the model without
+  them said 39.5 MB); 2048 cells, K = 64: peak RSS growth 5.2 GB / 8.6 GB (156 MB without).
+  Counted as 1.5 T (ratios 0.6-1.2 measured in 1D; in 2D, 96 × 96 cells, K = 20, without
+  continuation, the peak RSS grew 0.28 GB where 1.5 T is 1.7 GB: an over-estimate there);
 * ``starts`` > 1: the other starts' results, (4 + d) A each;
 * per cell, independent of K: the endpoints, potentials and the FFT tables of the pair field,
   :math:`8(40 + 2^d\cdot 4(d+1))` bytes.
@@ -37,6 +49,7 @@ from mfbridge.numerics.propagator import (
 
 LU_BYTES_PER_CELL = 680  # 10 poles x (4 complex128 + 1 int32) per cell, axis and step
 DENSE_BYTES_PER_PAIR = 64 * 8
+GAUSSIAN_BYTES_PER_ENTRY = 16  # a float64 weight and an int64 index per window entry
 
 
 @dataclass(frozen=True)
@@ -64,10 +77,12 @@ def format_bytes(n: float) -> str:
 
 def estimate(shape: tuple[int, ...], spacing: tuple[float, ...], steps: int, horizon: float,
              noise: float, *, route: str, interacting: bool, method: str = "optimal",
-             anderson: int = 6, coupling: bool = False, starts: int = 1) -> MemoryEstimate:
+             anderson: int = 6, coupling: bool = False, starts: int = 1,
+             gaussian_steps: bool = False) -> MemoryEstimate:
     """The peak memory of :func:`~mfbridge.solvers.fixed_point.solve_bridge` on a grid of
     ``shape`` cells of widths ``spacing`` (length) with ``steps`` time steps over ``horizon``
-    and noise σ = ``noise``; ``route`` is ``"operator"`` or ``"dense"`` (as chosen)."""
+    and noise σ = ``noise``; ``route`` is ``"operator"`` or ``"dense"`` (as chosen);
+    ``gaussian_steps``: the reference steps are the split heat kernel's (the kernel chosen)."""
     d = len(shape)
     n = 1
     for cells in shape:
@@ -85,6 +100,10 @@ def estimate(shape: tuple[int, ...], spacing: tuple[float, ...], steps: int, hor
         terms = poisson_terms(lam, UNIFORMISATION_TAIL) if lam < 1e4 else int(lam)
         if not uniformisation_is_cheaper(terms, n):
             contour_axes += 1
+    if gaussian_steps:  # no step operators: the windows' tables instead
+        contour_axes = 0
+        parts["Gaussian-step windows"] = int(
+            1.5 * 2 * steps * GAUSSIAN_BYTES_PER_ENTRY * n * sum(int(c) for c in shape))
     parts["contour LU factors"] = LU_BYTES_PER_CELL * steps * n * contour_axes
     parts["n x n kernel"] = DENSE_BYTES_PER_PAIR * n * n if route == "dense" or coupling else 0
     parts["other starts"] = (starts - 1) * (4 + d) * path
