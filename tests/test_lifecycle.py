@@ -26,6 +26,7 @@ from mfbridge.result import COMPLETE_FILE, RESULT_FILE, SUMMARY_FILE, read_marke
 from mfbridge.runs import cli, folders, records, sweeps
 from mfbridge.runs.cli import run
 from mfbridge.runs.commands import check, collect, replay
+from mfbridge.runs.config_checks import override_mistakes
 from mfbridge.runs.exits import EXIT_CODES, exit_code, sweep_exit_code
 from mfbridge.runs.lock import LOCK_FILE, FolderBusy, RunLock
 
@@ -201,6 +202,26 @@ def test_output_path_that_cannot_be_a_folder(tmp_path: Path, where: str) -> None
 
 
 # -------------------------------------------------------------------------- load and check
+
+
+@pytest.mark.parametrize("name", ["noise=0.8", "noise=0.8,steps=8"])
+def test_output_path_with_hydra_syntax_asks_for_quotes(tmp_path: Path, name: str,
+                                                       monkeypatch: pytest.MonkeyPatch,
+                                                       capsys: pytest.CaptureFixture[str]
+                                                       ) -> None:
+    """Before: a folder named like a sweep job (hydra.run.dir=.../noise=0.8,steps=8) gave
+    Hydra's "mismatched input '=' expecting <EOF>" or "Ambiguous value", exit 1. Now one line,
+    exit 2, with the quoted form, which Hydra accepts (measured: the run went into .../a=b,c)."""
+    folder = tmp_path / name
+    monkeypatch.setattr("sys.argv", ["mfbridge", *SMALL, f"hydra.run.dir={folder}"])
+    with pytest.raises(SystemExit) as stop:
+        cli.main()
+    assert stop.value.code == EXIT_CODES["refused"]
+    assert not folder.exists()
+    err = capsys.readouterr().err
+    assert f"quote the folder: \"hydra.run.dir='{folder}'\"" in err
+    assert "Traceback" not in err
+    assert override_mistakes([f"hydra.run.dir='{folder}'", f'hydra.sweep.dir="{folder}"']) == []
 
 
 def test_load_warns_unless_complete_and_converged(finished: Path, tmp_path: Path) -> None:

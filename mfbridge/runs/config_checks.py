@@ -41,11 +41,20 @@ def default_choices() -> dict[str, str]:
     return out
 
 
+#: overrides naming the output folder, and the characters Hydra's grammar does not take
+#: unquoted in their values
+OUTPUT_KEYS = ("hydra.run.dir", "hydra.sweep.dir")
+GRAMMAR_CHARACTERS = "=, \t[]{}()"
+
+
 def override_mistakes(overrides: Sequence[str]) -> list[str]:
     """What is wrong with command-line ``overrides`` that would otherwise be ignored or fail
     with Hydra's hint: ``+group=option`` for a group that already has a default (Hydra appends
     it at the top level, where nothing reads it), ``group@place=option`` for a group chosen at
-    the top level. Each message shows the right syntax; empty when there is nothing to say."""
+    the top level, an output folder (``hydra.run.dir``, ``hydra.sweep.dir``) whose unquoted
+    path holds characters of Hydra's override grammar (a sweep job's folder such as
+    ``.../noise=0.8,steps=8``: Hydra's "mismatched input" or "Ambiguous value", exit 1). Each
+    message shows the right syntax; empty when there is nothing to say."""
     groups = default_choices()
     mistakes = []
     for item in overrides:
@@ -57,6 +66,10 @@ def override_mistakes(overrides: Sequence[str]) -> list[str]:
         if name in groups and (at or key.startswith("+")):
             mistakes.append(f"{item!r}: the {name} group is chosen at the top level (default "
                             f"{groups[name]}); write {name}={value}")
+        if (bare in OUTPUT_KEYS and value and value[0] not in "'\"" and "${" not in value
+                and any(c in value for c in GRAMMAR_CHARACTERS)):
+            mistakes.append(f"{item!r}: Hydra reads '=', ',', spaces and brackets in a value as "
+                            f"its own syntax; quote the folder: \"{bare}='{value}'\"")
     return mistakes
 
 
