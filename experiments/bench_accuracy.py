@@ -161,12 +161,12 @@ def main() -> None:
     specs = [(48, 12), (96, 24), (192, 48)] + ([] if args.quick else [(384, 96)])
     direct_at, how = ladder("direct solver, L-BFGS", lambda p: solve_direct(
         p, DirectOptions(method="lbfgs")), specs, lines)
-    plain_at, _ = ladder("mfbridge, plain solves (no estimate)", solve_bridge,
+    plain_at, plain_how = ladder("mfbridge, plain solves (no estimate)", solve_bridge,
                          [(96, 24), (192, 48), (384, 96), (768, 192)], lines)
     lines.extend(["## Ratio", "",
                   f"direct L-BFGS at {TARGET:g} ({how}): {direct_at:.1f} CPU s; mfbridge with "
                   f"the target option: {cpu:.1f} CPU s: **ratio {direct_at / cpu:.0f}** "
-                  f"(plain mfbridge ladder at {TARGET:g}, interpolated: {plain_at:.1f} s, "
+                  f"(plain mfbridge ladder at {TARGET:g}, {plain_how}: {plain_at:.1f} s, "
                   f"ratio {direct_at / plain_at:.0f}).", ""])
     print(lines[-2], flush=True)
     if not args.no_overhead:
