@@ -150,13 +150,16 @@ def test_gaussian_steps_tables_against_the_estimate() -> None:
     assert 0.8 * bound < largest[0] <= need.parts["Gaussian-step windows"], largest[0] / bound
 
 
+@pytest.mark.parametrize("series", [False, True])
 def test_auto_kernel_choosing_gaussian_steps_is_estimated_again(
-        monkeypatch: pytest.MonkeyPatch) -> None:
+        series: bool, monkeypatch: pytest.MonkeyPatch) -> None:
     """kernel=auto picks the Gaussian steps at sigma = 0.1 on 1024 cells (estimated cell Peclet
-    number above 3): refused with their tables (1.61 GB) when 500 MB are available, where the
-    estimate of the chain alone (39.5 MB) fits."""
+    number above 3; in a series of three snapshots, for both segments): refused with their
+    tables (1.61 GB) when 500 MB are available, where the estimate of the chain alone (39.5 MB)
+    fits."""
     monkeypatch.setattr(resources, "available_memory", lambda: (500_000_000, "test"))
-    cfg = mfbridge.compose(["grid.shape=1024", "steps=32", "noise=0.1", "figures=false"])
+    cfg = mfbridge.compose(["grid.shape=1024", "steps=32", "noise=0.1", "figures=false",
+                            *(["endpoints=series"] if series else [])])
     with pytest.raises(MemoryRefusal, match=r"needs about 1\.\d+ GB \(operator route: "
                        r"Gaussian-step windows 1\.61 GB"):
         mfbridge.solve(cfg)

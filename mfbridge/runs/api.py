@@ -285,11 +285,12 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
         log_unestimated("the direct solver" if type(options).__name__ == "DirectOptions"
                         else f"a grid of type {type(grid).__name__}")
     problem, axes = _problem_and_axes(cfg, grid)
-    if (isinstance(options, SolverOptions) and options.kernel == "auto"
-            and isinstance(problem, BridgeProblem)):
+    if isinstance(options, SolverOptions) and options.kernel == "auto":
         from mfbridge.solvers.small_noise import choose_kernel
 
-        if choose_kernel(problem, "auto")[0] == "gaussian":  # its windows, before solving
+        # the Gaussian steps' windows, before solving (a series: when any segment takes them)
+        bridges = problem.segments() if isinstance(problem, SeriesProblem) else [problem]
+        if any(choose_kernel(b, "auto")[0] == "gaussian" for b in bridges):
             _check_memory(cfg, problem.grid, options, kernel="gaussian")
     if isinstance(problem, SeriesProblem):
         if not isinstance(options, SolverOptions):
