@@ -52,6 +52,11 @@ time unit stretched by σ²/2, so every T → ∞ limit below holds for the code
   (on [0, L]; H. Spohn, "Long range correlations for stochastic lattice gases in a
   non-equilibrium steady state", J. Phys. A 16, 4275, 1983; :func:`gaussian_quadratic_form`).
 
+* Current fluctuations: the variance and the rate function of the time-averaged current
+  (:func:`current_variance`, :func:`current_rate`; independent walkers:
+  :func:`walkers_current_rate`), references for
+  :mod:`~mfbridge.solvers.current_fluctuations`.
+
 The large-deviation probability of a profile of the chain with N sites is
 :math:`\exp(-N\,V(\rho))` (ρ on [0, 1]). Nothing here depends on the rest of mfbridge: the
 module is an independent reference for the tests and experiments of the direct solver.
@@ -59,21 +64,26 @@ module is an independent reference for the tests and experiments of the direct s
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 from scipy.linalg import solve_banded
+from scipy.optimize import minimize_scalar
 from scipy.special import xlogy
 
 from mfbridge.errors import ConvergenceWarning, InputError
 
 __all__ = [
     "QuasiPotential",
+    "current_rate",
+    "current_variance",
     "gaussian_quadratic_form",
     "local_free_energy",
     "quasi_potential",
     "steady_profile",
+    "walkers_current_rate",
 ]
 
 Profile = Callable[[np.ndarray], np.ndarray]
@@ -269,3 +279,49 @@ def gaussian_quadratic_form(delta: Profile, rho_a: float, rho_b: float, length: 
     matrix = np.diag(bar * (1 - bar)) + corr * w[None, :]
     u = np.linalg.solve(matrix, d)
     return 0.5 * float((w * d * u).sum())
+
+
+def current_variance(rho_a: float, rho_b: float) -> float:
+    r"""Variance per unit time of the current through the open SSEP on [0, 1] (macroscopic
+    units, the action of the module docstring): :math:`\int_0^1 2\bar\rho(1-\bar\rho)\,dx =
+    \rho_a + \rho_b - \tfrac23(\rho_a^2 + \rho_a\rho_b + \rho_b^2)` (Derrida, Douçot & Roche,
+    "Current fluctuations in the one-dimensional symmetric exclusion process with open
+    boundaries", J. Stat. Phys. 115, 717, 2004; Bodineau & Derrida, "Current fluctuations in
+    nonequilibrium diffusive systems: an additivity principle", PRL 92, 180601, 2004)."""
+    a, b = _check_reservoirs(rho_a, rho_b)
+    return a + b - 2.0 / 3.0 * (a * a + a * b + b * b)
+
+
+def current_rate(j: float, rho_a: float, rho_b: float) -> float:
+    r"""Rate function Φ(j) of the time-averaged current j through the open SSEP on [0, 1]:
+    the Legendre transform :math:`\sup_\lambda[\lambda j - \mu(\lambda)]` of the cumulant
+    generating function :math:`\mu(\lambda) = R(\omega)`, :math:`R(\omega) =
+    \operatorname{arcsinh}^2\sqrt\omega` (continued by :math:`-\arcsin^2\sqrt{-\omega}` for
+    ω < 0), :math:`\omega = \rho_a(e^\lambda - 1) + \rho_b(e^{-\lambda} - 1) +
+    \rho_a\rho_b(e^\lambda - 1)(e^{-\lambda} - 1)` (Derrida, Douçot & Roche 2004, above;
+    quoted from memory, its second derivative at 0 is :func:`current_variance`). λ is
+    searched in [-8, 8] (currents up to a few times the steady one)."""
+    a, b = _check_reservoirs(rho_a, rho_b)
+
+    def r(w: float) -> float:
+        return math.asinh(math.sqrt(w)) ** 2 if w >= 0 else -math.asin(math.sqrt(-w)) ** 2
+
+    def minus(lam: float) -> float:
+        e, f = math.exp(lam) - 1, math.exp(-lam) - 1
+        return -(lam * j - r(a * e + b * f + a * b * e * f))
+
+    out = minimize_scalar(minus, bounds=(-8.0, 8.0), method="bounded", options={"xatol": 1e-12})
+    return -float(out.fun)
+
+
+def walkers_current_rate(j: float, rho_a: float, rho_b: float) -> float:
+    r"""The same for independent walkers (χ = ρ) between reservoirs at densities ρ_a, ρ_b > 0:
+    two opposite Poisson streams, :math:`\mu(\lambda) = \rho_a(e^\lambda - 1) + \rho_b
+    (e^{-\lambda} - 1)` (Derrida, "Non-equilibrium steady states: fluctuations and large
+    deviations of the density and of the current", J. Stat. Mech. P07023, 2007; from memory),
+    whose Legendre transform is :math:`\rho_a + \rho_b - s + j\log\frac{j + s}{2\rho_a}`,
+    :math:`s = \sqrt{j^2 + 4\rho_a\rho_b}` (variance ρ_a + ρ_b)."""
+    if not (rho_a > 0 and rho_b > 0):
+        raise InputError(f"walker reservoir densities must be positive, got ({rho_a}, {rho_b})")
+    s = math.sqrt(j * j + 4 * rho_a * rho_b)
+    return rho_a + rho_b - s + j * math.log((j + s) / (2 * rho_a))
