@@ -111,7 +111,7 @@ def _minimise(action: Any, j: float, rho: np.ndarray, lower: float, upper: float
                 c = np.linalg.cholesky(h + shift * np.eye(len(h)))
                 break
             except np.linalg.LinAlgError:
-                shift = max(2 * shift, 1e-8 * np.abs(np.diag(h)).max())
+                shift = max(2 * shift, 1e-8 * max(float(np.abs(np.diag(h)).max()), 1e-300))
         p = -np.linalg.solve(c.T, np.linalg.solve(c, g))
         decrement = float(-g @ p)
         if decrement <= 2 * NEWTON_TOL * max(abs(value), 1e-300) and shift == 0.0:
