@@ -58,6 +58,6 @@ def test_two_dimensional_interval_holds_the_truth(study) -> None:
     # one seed of the 2D swarm (N = 5000, Gaussian core strength 1.5, range 0.5, round trap):
     # measured at seed 0 on 64² cells, 40 steps: 1.5533 [1.5106, 1.5964]
     rows = study.study(study.CASE_2D, range(1), 5000)["kernel 0.08"]
-    est, se, lower, upper = rows[0]
+    est, _se, lower, upper = rows[0]
     assert lower <= study.STRENGTH <= upper, rows
     assert lower <= est <= upper
