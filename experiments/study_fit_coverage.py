@@ -129,7 +129,7 @@ def coverage_rows(results: dict[str, np.ndarray]) -> list[str]:
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--seeds", type=int, default=20)
+    parser.add_argument("--seeds", type=int, default=20, help="seeds of the 1D case (0 skips it)")
     parser.add_argument("--population", type=int, default=5000)
     parser.add_argument("--seeds-2d", type=int, default=None,
                         help="seeds of the 2D case (default: --seeds; 0 skips it)")
@@ -147,7 +147,7 @@ def main() -> None:
             parser.error(f"unknown estimates {unknown}")
         case_1d = replace(CASE_1D, estimates=tuple(e for e in CASE_1D.estimates
                                                    if e[0] in wanted))
-    one = study(case_1d, range(args.seeds), args.population)
+    one = study(case_1d, range(args.seeds), args.population) if args.seeds > 0 else {}
     seeds_2d = args.seeds if args.seeds_2d is None else args.seeds_2d
     two = study(CASE_2D, range(seeds_2d), args.population) if seeds_2d > 0 else {}
     half = math.sqrt(3.841458820694124)
@@ -159,12 +159,15 @@ def main() -> None:
         f"threshold χ²₁,0.95 = {half**2:.3f}). Simulated by Euler–Maruyama (steps 5e-4) with grid "
         "pair forces; `python experiments/study_fit_coverage.py`.",
         "",
-        f"1D (beads: start N(−1, 0.15²), trap stiffness 1, core range 0.4, σ = 0.5; "
-        f"{CASE_1D.cells} cells, {CASE_1D.steps} steps):",
-        "",
-        *coverage_rows(one),
-        "",
     ]
+    if one:
+        lines += [
+            f"1D (beads: start N(−1, 0.15²), trap stiffness 1, core range 0.4, σ = 0.5; "
+            f"{CASE_1D.cells} cells, {CASE_1D.steps} steps):",
+            "",
+            *coverage_rows(one),
+            "",
+        ]
     if two:
         lines += [
             f"2D (a swarm: start N((−0.8, 0), 0.35² I), round trap stiffness 1, core range 0.5, "
