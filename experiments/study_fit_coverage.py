@@ -9,7 +9,8 @@ and the grid's own cells (histogram). Reported per estimate: the mean estimate a
 standard errors, the spread of the estimates against the reported standard error, and the
 fraction of seeds whose 95% profile interval covers the true strength (the nominal 95% holds
 asymptotically in N for the whole population observed at every time). A second table does the
-same in 2D (a swarm in a round trap) with the small kernel.
+same in 2D (a swarm in a round trap) with a kernel of 0.08 (the smallest the 64² grid resolves)
+and the grid's cells.
 
     python experiments/study_fit_coverage.py [--seeds 20] [--population 5000]
 
@@ -62,7 +63,7 @@ CASE_1D = Case(1, (-1.0,), 0.15, 0.4, Grid(-5.0, 5.0, 4096), 192, 60,
                (("kernel 0.04", ("kde", 0.04)), ("Scott", ("kde", "scott")),
                 ("histogram", ("histogram", "scott"))))
 CASE_2D = Case(2, (-0.8, 0.0), 0.35, 0.5, Grid((-5.0, -5.0), (5.0, 5.0), (256, 256)), 64, 20,
-               (("kernel 0.08", ("kde", 0.08)),))
+               (("kernel 0.08", ("kde", 0.08)), ("histogram", ("histogram", 0.08))))
 
 
 def snapshots(case: Case, population: int, seed: int) -> np.ndarray:
