@@ -76,7 +76,8 @@ def minimise(second_order: Callable[[Vector], SecondOrder | None],
              preconditioner: Callable[[Vector], Operator], *, max_iter: int, max_cg: int,
              tol: float, gtol: float,
              max_step: Callable[[Vector, Vector], float] | None = None,
-             callback: Callable[[int, float, float], None] | None = None) -> NewtonResult:
+             callback: Callable[[int, float, float], None] | None = None,
+             stop: Callable[[], bool] | None = None) -> NewtonResult:
     """Truncated Newton from ``x0``.
 
     ``second_order(x)`` returns f, ∇f and a Hessian–vector product (None outside the feasible
@@ -121,11 +122,18 @@ def minimise(second_order: Callable[[Vector], SecondOrder | None],
                 break
             step *= 0.5
         else:
+            step = 0.0
+        x_new = x + step * p
+        if not np.any(x_new != x):
+            # no decrease found, or a step too short to change x (a fraction-to-the-boundary
+            # step of 0 passes the Armijo test with f_new = f): iterating on cannot move
             converged = -slope <= 2 * tol * max(abs(f), 1e-300) or gnorm <= 100 * gtol
             status = "converged" if converged else "stalled"
-            message = f"line search found no decrease after {it} Newton iterations"
+            message = (f"line search found no step that moves the iterate and decreases f after "
+                       f"{it} Newton iterations (longest feasible step {full:.2e}, largest "
+                       f"gradient entry {gnorm:.2e})")
             break
-        x = x + step * p
+        x = x_new
         new_point = second_order(x)
         assert new_point is not None
         point = new_point
@@ -144,6 +152,10 @@ def minimise(second_order: Callable[[Vector], SecondOrder | None],
         if step == full and -slope <= 2 * tol * max(abs(point.value), 1e-300):
             status = "converged"
             message = f"Newton decrement² {-slope:.2e} ≤ 2 tol × J"
+            break
+        if stop is not None and stop():
+            status = "not_converged"
+            message = f"stopped by the time budget at f = {point.value:.8g}"
             break
     message += f" ({it} Newton iterations, {cg_total} CG iterations)"
     return NewtonResult(x, point.value, gnorm, it, cg_total, status, message, history)

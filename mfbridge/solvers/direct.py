@@ -112,7 +112,9 @@ class DirectOptions:
       on ρ, limit what is reached: J agreed with the truncated method to 6e-8 at 192 cells × 40
       steps); L-BFGS when the cost decreased by less than ``tol`` × J over the last ``window``
       iterations; ``gtol``: or (earlier methods) when the largest gradient entry is below it;
-    * ``warm_start``: ``"displacement"`` (McCann interpolation) or ``"linear"``.
+    * ``warm_start``: ``"displacement"`` (McCann interpolation) or ``"linear"``;
+    * ``time_budget``: wall-clock seconds after which the minimisation stops with status
+      ``"not_converged"`` and its last iterate (``None``: no limit).
     """
 
     mobility: Mobility = field(default_factory=Walkers)
@@ -126,6 +128,7 @@ class DirectOptions:
     method: str = "newton"
     max_cg: int = 500
     reservoirs: Reservoirs | None = None
+    time_budget: float | None = 600.0
 
     def __post_init__(self) -> None:
         if not isinstance(self.mobility, Mobility):
@@ -151,6 +154,8 @@ class DirectOptions:
             ("window", _is_int(self.window) and self.window >= 1),
             ("tol", is_real_number(self.tol) and self.tol >= 0),
             ("gtol", is_real_number(self.gtol) and self.gtol >= 0),
+            ("time_budget", self.time_budget is None
+             or (is_real_number(self.time_budget) and self.time_budget > 0)),
         ]
         for name, ok in checks:
             if not ok:
@@ -242,11 +247,12 @@ def solve_direct(problem: BridgeProblem, options: DirectOptions | None = None,
     """Minimise the discretised action of ``problem`` with ``options.mobility``.
 
     Returns a :class:`~mfbridge.result.BridgeResult` (method ``"direct"``, route the mobility's
-    name); ``status`` is ``"converged"`` or ``"not_converged"``/``"stalled"`` (then a
-    :class:`~mfbridge.errors.ConvergenceWarning` is issued). ``callback(iteration, cost,
-    largest gradient entry)`` is called after every iteration (Newton or L-BFGS). Raises
-    :class:`InputError` when an endpoint leaves the mobility's domain at the chosen
-    ``total_mass``, or for reservoirs that do not fit the grid or the mobility.
+    name); ``status`` is ``"converged"`` or ``"not_converged"`` (iteration limit, time budget,
+    or a line search that cannot move; then a :class:`~mfbridge.errors.ConvergenceWarning` is
+    issued). ``callback(iteration, cost, largest gradient entry)`` is called after every
+    iteration (Newton or L-BFGS). Raises :class:`InputError` when an endpoint leaves the
+    mobility's domain at the chosen ``total_mass``, or for reservoirs that do not fit the grid
+    or the mobility.
     """
     options = options or DirectOptions()
     if not isinstance(options, DirectOptions):
@@ -304,10 +310,15 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
         unpack, x0 = density_variables(act, guess)
     objective = Objective(act, unpack, mob)
     setup = time.perf_counter() - start
+    budget = math.inf if options.time_budget is None else float(options.time_budget)
+
+    def stop() -> bool:
+        return time.perf_counter() - start > budget
+
     if use_lbfgs:
-        opt = lbfgs(objective.value_grad, x0, options, callback)
+        opt = lbfgs(objective.value_grad, x0, options, callback, stop=stop)
     else:
-        opt = interior_newton(objective, x0, options, callback)
+        opt = interior_newton(objective, x0, options, callback, stop=stop)
     solve_seconds = time.perf_counter() - start - setup
     with torch.no_grad():
         rho_t = unpack(torch.from_numpy(opt.x))
@@ -343,6 +354,8 @@ def _bridge_result(problem: BridgeProblem, options: DirectOptions, act: DirectAc
     p = rho * vol / mass
     fe = act.free_energy(rho)
     mean, cov = observables.moments(p, grid)
+    if status == "stalled":  # the shared statuses (result.STATUSES): a stall stops short of tol
+        status, message = "not_converged", f"stalled: {message}"
     if status == "converged":
         message = f"converged: {message}; J = {cost:.8g}"
     else:
@@ -504,8 +517,10 @@ def _solve_flux(problem: BridgeProblem, options: DirectOptions,
         status, message, iterations, grad_norm, history = "converged", "one step: the " \
             "optimal fluxes", 0, 0.0, []
     else:
+        budget = math.inf if options.time_budget is None else float(options.time_budget)
         opt = minimise(fa, guess[1:-1].ravel(), tol=options.tol, max_iter=options.max_iter,
-                       max_cg=options.max_cg, callback=callback)
+                       max_cg=options.max_cg, callback=callback,
+                       stop=lambda: time.perf_counter() - start > budget)
         rho_int, flux = opt.rho, opt.flux
         status, message, iterations, grad_norm, history = (
             opt.status, opt.message, opt.iterations, opt.grad_norm, opt.history)

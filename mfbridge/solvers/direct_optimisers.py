@@ -127,12 +127,13 @@ class Minimised:
 def lbfgs(fun: Callable[[np.ndarray], tuple[float, np.ndarray | None]], x0: np.ndarray,
            options: StopRule, callback: Callable[[int, float, float], None] | None,
            preconditioner: Callable[[np.ndarray], Callable[[np.ndarray], np.ndarray]] | None
-           = None) -> Minimised:
+           = None, stop: Callable[[], bool] | None = None) -> Minimised:
     """L-BFGS (two-loop recursion; Nocedal & Wright, Numerical Optimization, 2006, Alg. 7.4)
     with Armijo backtracking; ``fun`` returns (inf, None) outside the feasible set.
 
     ``preconditioner(x)``, when given, returns the map q ↦ H₀⁻¹q of an SPD approximation H₀ of
-    the Hessian at x, used instead of the scalar initial matrix."""
+    the Hessian at x, used instead of the scalar initial matrix. ``stop()``, checked after every
+    iteration, ends the run with status ``"not_converged"`` when it returns True (time budget)."""
     x = x0.copy()
     f, g = fun(x)
     if g is None or not math.isfinite(f):
@@ -206,6 +207,9 @@ def lbfgs(fun: Callable[[np.ndarray], tuple[float, np.ndarray | None]], x0: np.n
         if gnorm <= options.gtol:
             status, message = "converged", f"gradient {gnorm:.2e} ≤ gtol after {it} iterations"
             break
+        if stop is not None and stop():
+            message = f"stopped by the time budget after {it} iterations: gradient {gnorm:.2e}"
+            break
         if len(values) > options.window:
             drop = values[-options.window - 1] - f
             if drop <= options.tol * max(abs(f), 1e-300):
@@ -220,13 +224,18 @@ def lbfgs(fun: Callable[[np.ndarray], tuple[float, np.ndarray | None]], x0: np.n
 
 
 def interior_newton(objective: Objective, x0: np.ndarray, options: StopRule,
-                     callback: Callable[[int, float, float], None] | None) -> NewtonResult:
+                    callback: Callable[[int, float, float], None] | None,
+                    stop: Callable[[], bool] | None = None) -> NewtonResult:
     r"""Truncated Newton on J - μ|c|Σ log(ρ - lower) (+ log(upper - ρ)) over the interior
     densities, for μ = μ₀, μ₀/10, ... down to a μ whose bias on J (μ|c| per barrier term, the
     duality gap of a log barrier: Nocedal & Wright, 2006, §19.2) is below tol × J; each stage is
     warm-started from the last, the last one solved to ``options.tol``. Without the barrier,
     Newton steps in ρ keep pushing the far tails (optimal values ~1e-20) below zero and the
-    fraction-to-the-boundary rule stalls."""
+    fraction-to-the-boundary rule stalls.
+
+    Only the last stage can end ``"converged"``: when ``max_iter`` runs out (or ``stop()`` says
+    so) in an earlier one, the status is ``"not_converged"`` and the message gives the barrier
+    weight reached, even if that stage met its own loose tolerance."""
     j0 = objective.value(x0)
     act = objective.act
     terms = (act.problem.steps - 1) * act.grid.size * (2 if math.isfinite(objective.mob.upper)
@@ -242,17 +251,26 @@ def interior_newton(objective: Objective, x0: np.ndarray, options: StopRule,
         opt = minimise(objective.second_order, objective.value, x, precond,
                        max_iter=max(options.max_iter - iterations, 1), max_cg=options.max_cg,
                        tol=options.tol if last else 1e-6, gtol=options.gtol if last else 0.0,
-                       max_step=max_step(act, objective.mob), callback=callback)
+                       max_step=max_step(act, objective.mob), callback=callback, stop=stop)
         history += [{**h, "seconds": h["seconds"] + offset, "barrier": mu} for h in opt.history]
         x, iterations, cg = opt.x, iterations + opt.iterations, cg + opt.cg_iterations
-        if last or iterations >= options.max_iter:
+        stopped = stop is not None and opt.status == "not_converged" and stop()
+        if last or iterations >= options.max_iter or stopped:
             break
         mu = max(mu * MU_FACTOR, mu_end)
     objective.barrier = 0.0
     value, grad = objective.value_grad(x)
     gnorm = float(np.abs(grad).max()) if grad is not None else math.nan
-    message = opt.message.split(" (")[0] + f" ({iterations} Newton iterations, {cg} CG iterations)"
-    return NewtonResult(x, value, gnorm, iterations, cg, opt.status, message, history)
+    status, message = opt.status, opt.message.split(" (")[0]
+    if not last:
+        # an intermediate stage's "converged" is not the answer: its barrier still biases J
+        status = "not_converged"
+        why = "the time budget ran out" if stopped else f"max_iter = {options.max_iter} ran out"
+        message = (f"not converged: {why} at barrier weight μ = {mu:.2e}, before the last "
+                   f"stage (μ = {mu_end:.2e}); the barrier still shifts J by up to "
+                   f"{mu * act.vol * terms:.2e}")
+    message += f" ({iterations} Newton iterations, {cg} CG iterations)"
+    return NewtonResult(x, value, gnorm, iterations, cg, status, message, history)
 
 
 class Objective:

@@ -44,7 +44,7 @@ from dataclasses import dataclass
 import numpy as np
 from threadpoolctl import threadpool_limits
 
-from mfbridge.errors import ConvergenceWarning, InputError, PrecisionWarning, unknown_name
+from mfbridge.errors import ConvergenceWarning, InputError, PrecisionWarning
 from mfbridge.model.problem import BridgeProblem
 from mfbridge.numerics import entropic, observables
 from mfbridge.numerics.anderson import AndersonMixer
@@ -57,14 +57,11 @@ from mfbridge.numerics.reference import (
     faces,
 )
 from mfbridge.result import BridgeResult
-from mfbridge.solvers import multistart, sanity, small_noise
+from mfbridge.solvers import multistart, preflight, sanity, small_noise
 from mfbridge.solvers.cost import bridge_cost
+from mfbridge.solvers.options import COUPLING_MAX_CELLS, SolverOptions
 from mfbridge.solvers.stopping import MarginalStall
 
-METHODS = ("optimal", "frozen")
-PROPAGATIONS = ("auto", "rational", "log")
-COUPLING_MAX_CELLS = 4096
-ROUTES = ("auto", "operator", "dense")
 # an outer residual this many times above max(first residual, 1) means the start is outside the
 # basin of the fixed point (transient rises of 100x the best residual occur in converging runs)
 DIVERGENCE_FACTOR = 10.0
@@ -78,91 +75,10 @@ DIVERGENCE_FACTOR = 10.0
 INNER_FRACTION = 1e-4
 INNER_FRACTION_MIN = 1e-6
 STAGNATION = 4
-MAX_STARTS = 64
-
-
-@dataclass(frozen=True)
-class SolverOptions:
-    """How to solve.
-
-    * ``method``: ``"optimal"`` (minimiser of J, with the correction V) or ``"frozen"``
-      (self-consistent frozen-reference bridge, V = 0);
-    * ``route``: ``"operator"`` (kernel applied by time steps), ``"dense"`` (n × n kernel, POT
-      Sinkhorn, also returns the coupling) or ``"auto"`` (dense for grids of at most
-      ``dense_max_cells`` cells, else operator);
-    * ``tol``: stop when the self-consistency residual
-      :math:`\\max_k\\|p_k - \\bar p_k\\|_1 + T\\max_k \\sum_i p_{k,i}|V_{k,i} - \\bar V_{k,i}|`
-      and the L1 error of the initial marginal are both below it;
-    * ``anderson`` (history depth, 0 = plain iteration) and ``damping`` (mixing weight in (0, 1]);
-    * ``sinkhorn_tol``, ``sinkhorn_max_iter``: the entropic sub-problem's own stopping rule (its
-      tolerance is loosened to 1e-4 × the outer residual, at most 1e-3, while the outer loop
-      is far out, and tightened 100-fold whenever the outer residual stalls);
-    * ``propagation``: how time steps are applied in the sweeps: ``"rational"`` (fast; values
-      below ~1e-11 of the largest are lost), ``"log"`` (exact in the log domain, any dynamic
-      range, slower), or ``"auto"`` (rational, switching to log when the kernel underflows where
-      an endpoint has mass or the Sinkhorn iteration stalls);
-    * ``noise_continuation``: if the iteration fails from the start given, retry from noise
-      2^m σ, halving it stage by stage down to σ (m = this value; 0: never). Small noise makes
-      the cold start fail (the potentials are O(1/σ²)); this is the usual cure;
-    * ``continuation``: if that fails too, retry switching the interaction on in this many
-      stages (0: never);
-    * ``coupling``: also return the static coupling π(x₀, x_T) (who ends where) with the operator
-      route, by forming the kernel once at the end (n × n memory; at most ``COUPLING_MAX_CELLS``
-      cells). The dense route always returns it;
-    * ``starts``: run the outer loop from this many initial guesses, the usual one and
-      ``starts - 1`` tilted ones (:mod:`mfbridge.solvers.multistart`); the cheapest converged
-      bridge is returned, the other distinct ones are in ``result.alternatives`` and a
-      :class:`~mfbridge.errors.MultipleBridgesWarning` names their costs (1: one start);
-    * ``kernel``: the reference's steps: ``"chain"`` (Scharfetter–Gummel), ``"gaussian"`` (the
-      split heat kernel, for small noise), ``"auto"`` (:mod:`mfbridge.solvers.small_noise`).
-    """
-
-    method: str = "optimal"
-    route: str = "auto"
-    tol: float = 1e-9
-    max_iter: int = 300
-    anderson: int = 6
-    damping: float = 1.0
-    sinkhorn_tol: float = 1e-11
-    sinkhorn_max_iter: int = 5000
-    dense_max_cells: int = 64
-    coupling: bool = False
-    continuation: int = 4
-    noise_continuation: int = 4
-    propagation: str = "auto"
-    starts: int = 1
-    kernel: str = "auto"
-
-    def __post_init__(self) -> None:
-        if self.method not in METHODS:
-            raise unknown_name("method", self.method, METHODS)
-        if self.kernel not in small_noise.KERNELS:
-            raise unknown_name("kernel", self.kernel, small_noise.KERNELS)
-        if self.route not in ROUTES:
-            raise unknown_name("route", self.route, ROUTES)
-        if self.propagation not in PROPAGATIONS:
-            raise unknown_name("propagation", self.propagation, PROPAGATIONS)
-        checks = [
-            ("tol", self.tol > 0),
-            ("sinkhorn_tol", self.sinkhorn_tol > 0),
-            ("max_iter", int(self.max_iter) == self.max_iter and self.max_iter >= 1),
-            ("sinkhorn_max_iter", int(self.sinkhorn_max_iter) == self.sinkhorn_max_iter
-             and self.sinkhorn_max_iter >= 1),
-            ("anderson", int(self.anderson) == self.anderson and self.anderson >= 0),
-            ("damping", 0 < self.damping <= 1),
-            ("dense_max_cells", self.dense_max_cells >= 0),
-            ("coupling", isinstance(self.coupling, bool)),
-            ("continuation", int(self.continuation) == self.continuation
-             and self.continuation >= 0),
-            ("noise_continuation", int(self.noise_continuation) == self.noise_continuation
-             and 0 <= self.noise_continuation <= 10),
-            ("starts", isinstance(self.starts, int) and not isinstance(self.starts, bool)
-             and 1 <= self.starts <= MAX_STARTS),
-        ]
-        for name, ok in checks:
-            if not ok:
-                value = getattr(self, name)
-                raise InputError(f"solver option {name} has an invalid value {value!r}")
+# largest |omega V| accepted in the log-weights: a double near 1e8 has an ulp of 1.5e-8, so
+# log-domain sums of e^{-omega V} keep ~8 digits; beyond, an iterate has blown up (common
+# practice, no source; measured: a diverging iterate at sigma = 0.04 on 24 cells had |V| ~ 1e33)
+LOG_WEIGHT_MAX = 1e8
 
 
 @dataclass(frozen=True)
@@ -222,8 +138,10 @@ class _Bridge:
         return self.confinement + self.scale * self.pair(p)
 
     def reference(self, p_bar: np.ndarray, v_bar: np.ndarray,
-                  tail: float = UNIFORMISATION_TAIL) -> entropic.FrozenReference:
-        phi = self.potential(p_bar)
+                  tail: float = UNIFORMISATION_TAIL, phi: np.ndarray | None = None
+                  ) -> entropic.FrozenReference:
+        """The frozen reference of (p̄, V̄); ``phi``: U + W ⋆ p̄ if already computed."""
+        phi = self.potential(p_bar) if phi is None else phi
         phi_mid = 0.5 * (phi[:-1] + phi[1:])
         log_weights = -self.expand(self.omega) * v_bar
         if self.kernel == "gaussian":
@@ -274,6 +192,18 @@ class _Bridge:
         if not np.all(np.isfinite(c)):
             return np.full_like(c, np.nan)
         return self.scale * self.pair(c)
+
+
+def _blown_up(bridge: _Bridge, phi: np.ndarray, v_bar: np.ndarray) -> bool:
+    """Whether a mixed iterate has left what the discretisation represents: U + W ⋆ p̄ changes by
+    more than :data:`~mfbridge.solvers.preflight.Z_MAX` across a cell (the start passed that
+    check), or the log-weights ωV̄ exceed :data:`LOG_WEIGHT_MAX` (then log-domain sums of
+    e^{-ωV} have no precision left, and the log-domain steps' stopping test never passes)."""
+    if preflight.largest_cell_drift(phi, bridge.problem).z > preflight.Z_MAX:
+        return True
+    with np.errstate(invalid="ignore", over="ignore"):
+        weights = np.abs(bridge.expand(bridge.omega) * v_bar)
+    return not bool(np.all(weights <= LOG_WEIGHT_MAX))
 
 
 def _residual(p: np.ndarray, p_bar: np.ndarray, v: np.ndarray, v_bar: np.ndarray,
@@ -346,6 +276,13 @@ class _Outcome:
     def log_domain(self) -> bool:
         return self.bridge.log_domain
 
+    def finite(self) -> bool:
+        """Whether the flow, V and the final scaling can start another attempt (log b may be
+        -inf where ν has no mass)."""
+        log_b = self.solved.sol.log_b
+        return bool(np.all(np.isfinite(self.solved.p)) and np.all(np.isfinite(self.v_bar))
+                    and not np.any(np.isnan(log_b) | (log_b == np.inf)))
+
     def start(self, noise: float | None = None) -> _Start:
         """Where to start next; for another noise σ' the potentials are rescaled by
         (σ/σ')², their leading small-noise order (log-potentials and V are O(1/σ²))."""
@@ -382,7 +319,8 @@ def _attempt(problem: BridgeProblem, scale: float, options: SolverOptions, route
             "switching to exact log-domain propagation (slower; set solver.propagation=log to "
             "start there)"), stacklevel=4)
         bridge = _Bridge(problem, scale=scale, log_domain=True, kernel=options.kernel)
-        start = outcome.start() if outcome is not None else start
+        # a diverged attempt may end on a NaN flow: then start again from the given start
+        start = outcome.start() if outcome is not None and outcome.finite() else start
         outcome = _iterate(bridge, options, route, start, history, callback)
     if outcome.status == "stalled":
         outcome.status = "not_converged"
@@ -409,6 +347,15 @@ def _noise_continuation(problem: BridgeProblem, options: SolverOptions, route: s
                            log_domain=outcome.log_domain)
     outcome.noise_start = noises[0]
     return outcome
+
+
+def _closer(a: _Outcome, b: _Outcome) -> _Outcome:
+    """The converged one of two outcomes for the same problem, else the one with the smaller
+    finite residual (``a`` on ties)."""
+    def rank(o: _Outcome) -> tuple[bool, float]:
+        return (o.status != "converged",
+                o.residual if np.isfinite(o.residual) and o.finite() else np.inf)
+    return b if rank(b) < rank(a) else a
 
 
 def _cold_start(problem: BridgeProblem) -> _Start:
@@ -440,14 +387,24 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
                        else np.zeros_like(warm_start.correction),
                        np.nan_to_num(warm_start.log_backward[-1], nan=0.0, neginf=-745.0),
                        solution=True)
+    scaled = _Bridge(problem)
+    preflight.check_scales(problem, start.p_bar, scaled.pair, scaled.confinement)
     history: list[dict[str, float]] = []
     outcome = _attempt(problem, 1.0, options, route, start, history, callback)
+    # the answer must be for the problem as given: a continuation that stops early holds a flow
+    # for a larger noise or a weaker interaction, which is never returned
     note = _LOG_NOTE if outcome.log_domain and options.kernel == "chain" else kernel_note
+    answer, stopped = outcome, ""
     if not outcome.stop and outcome.status != "converged" and options.noise_continuation > 0:
         outcome = _noise_continuation(problem, options, route, history, callback)
-        note = (f" (by continuation in the noise from {outcome.noise_start:.3g} over "
-                f"{options.noise_continuation} stages)")
-    if (not outcome.stop and outcome.status != "converged" and options.continuation > 0
+        if outcome.bridge.problem.noise != problem.noise:
+            stopped = (f"; continuation in the noise stopped at σ = "
+                       f"{outcome.bridge.problem.noise:.3g}")
+        elif _closer(answer, outcome) is outcome:
+            answer = outcome
+            note = (f" (by continuation in the noise from {outcome.noise_start:.3g} over "
+                    f"{options.noise_continuation} stages)")
+    if (not answer.stop and answer.status != "converged" and options.continuation > 0
             and not outcome.bridge.pair.is_zero):
         m = options.continuation
         start = _cold_start(problem)
@@ -457,7 +414,16 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
             if outcome.status != "converged":
                 break
             start = outcome.start()
-        note = f" (by continuation in the interaction strength over {m} stages)"
+        if outcome.bridge.scale == 1.0:
+            if _closer(answer, outcome) is outcome:
+                answer = outcome
+                note = f" (by continuation in the interaction strength over {m} stages)"
+        else:
+            stopped += (f"; continuation in the interaction strength stopped at stage {j} of "
+                        f"{m} (W × {j / m:.3g}: {outcome.status.replace('_', ' ')}, residual "
+                        f"{outcome.residual:.2e})")
+    outcome = answer
+    note += stopped
     bridge = outcome.bridge
     solved, ref = outcome.solved, outcome.ref
     if options.coupling and solved.sol.coupling is None:
@@ -523,7 +489,11 @@ def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
     stall, stop = MarginalStall(options.tol, options.sinkhorn_tol, route), ""
     for _ in range(options.max_iter):
         t0 = time.perf_counter()
-        ref = bridge.reference(p_bar, v_bar, step_tail(inner_tol, bridge.k_steps))
+        phi = bridge.potential(p_bar)
+        if solved is not None and _blown_up(bridge, phi, v_bar):
+            status = "diverged"
+            break
+        ref = bridge.reference(p_bar, v_bar, step_tail(inner_tol, bridge.k_steps), phi)
         sol = inner(ref, mu, nu, log_b, tol=inner_tol, max_iter=options.sinkhorn_max_iter,
                     **accelerate)
         log_b = sol.log_b

@@ -401,14 +401,16 @@ def _value(fa: FluxAction, rho: np.ndarray, flux: np.ndarray) -> float:
 
 def minimise(fa: FluxAction, rho0: np.ndarray, *, tol: float, max_iter: int, max_cg: int,
              linear: str = "auto",
-             callback: Callable[[int, float, float], None] | None = None) -> FluxNewtonResult:
+             callback: Callable[[int, float, float], None] | None = None,
+             stop: Callable[[], bool] | None = None) -> FluxNewtonResult:
     """Primal–dual barrier Newton (module docstring) from interior densities ``rho0`` (flat,
     strictly inside the mobility's domain; fluxes start optimal for them).
     ``callback(iteration, J, largest gradient entry of J)`` is called once per Newton
     iteration, numbered across the barrier stages. Stops when, at the
     last barrier weight, the Newton decrement² -g·p is at most 2 ``tol`` × |J|; "not_converged"
     when ``max_iter`` Newton iterations run out (whatever the barrier stage) or the line search
-    finds no decrease before that."""
+    finds no decrease before that, or when ``stop()`` (checked after every Newton iteration;
+    a time budget) returns True."""
     mob = fa.mob
     if linear == "auto":
         linear = "lu" if fa.grid.dim == 1 else "blocks"
@@ -492,6 +494,9 @@ def minimise(fa: FluxAction, rho0: np.ndarray, *, tol: float, max_iter: int, max
             if (decrement <= 2 * stage_tol * max(abs(value), floor)
                     and (not last or barrier.centred(rho, zl, zu, mu))):
                 stage_done = True
+                break
+            if stop is not None and stop():
+                message = f"stopped by the time budget at iteration {it} (barrier weight {mu:.2e})"
                 break
         if not stage_done:
             if not message:
