@@ -57,7 +57,8 @@ def test_one_dimensional_intervals_cover_the_truth_at_their_nominal_rate(study) 
 def test_two_dimensional_interval_holds_the_truth(study) -> None:
     # one seed of the 2D swarm (N = 5000, Gaussian core strength 1.5, range 0.5, round trap),
     # snapshots as histograms on the grid's cells: measured at seed 0 on 64² cells, 20 steps,
-    # 1.5139 [1.4814, 1.5673]. (With a Gaussian kernel of 0.08, the smallest the grid resolves,
+    # 1.5076 [1.4661, 1.5503] (J at the step midpoints; 1.5139 [1.4814, 1.5673] with the
+    # trapezoid J used before). (With a Gaussian kernel of 0.08, the smallest the grid resolves,
     # the same seed gives 1.5529 [1.5103, 1.5956]: the kernel's added variance biases the
     # strength by about 2.5 standard errors; experiments/results/fit_coverage.md.)
     case = replace(study.CASE_2D, estimates=(study.CASE_2D.estimates[1],))
