@@ -33,6 +33,7 @@ Everything is carried in the log domain: ``log_*`` arrays hold natural logarithm
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -55,6 +56,8 @@ class FrozenReference:
     steps: list[StepOperator] | list[GaussianStep]  # GaussianStep: log_domain only
     log_weights: np.ndarray
     log_domain: bool = False  # propagate exactly in the log domain (slower, any dynamic range)
+    # called before every step of a sweep (a time budget may raise from it)
+    tick: Callable[[], None] | None = None
 
     @property
     def n_steps(self) -> int:
@@ -109,6 +112,8 @@ def backward_sweep(ref: FrozenReference, log_b: np.ndarray) -> np.ndarray:
     log_g = np.empty((k_steps + 1, *log_b.shape))
     log_g[k_steps] = log_b
     for k in range(k_steps, 0, -1):
+        if ref.tick is not None:
+            ref.tick()
         weighted = log_g[k] + ref.log_weights[k]
         log_g[k - 1] = log_step(ref.steps[k - 1], weighted, False, ref.log_domain)
     return log_g
@@ -120,6 +125,8 @@ def forward_sweep(ref: FrozenReference, log_a: np.ndarray) -> np.ndarray:
     log_f = np.empty((k_steps + 1, *log_a.shape))
     log_f[0] = log_a
     for k in range(1, k_steps + 1):
+        if ref.tick is not None:
+            ref.tick()
         weighted = log_f[k - 1] + ref.log_weights[k - 1]
         log_f[k] = log_step(ref.steps[k - 1], weighted, True, ref.log_domain)
     return log_f

@@ -36,6 +36,7 @@ severe job; SIGTERM/SIGINT stop its workers too.
 from __future__ import annotations
 
 import logging
+import math
 import os
 import signal
 import sys
@@ -64,10 +65,26 @@ records.register_resolvers()
 
 
 def _progress(it: Iteration) -> None:
-    log.info(
-        "outer iteration %3d: residual %.2e, marginal error %.2e, Sinkhorn %d it, %.2f s",
-        it.iteration, it.residual, it.marginal_error, it.sinkhorn_iterations, it.seconds,
-    )
+    """One log line per outer iteration or Newton–Krylov step, and a heartbeat line inside long
+    ones (at least every few seconds), each with the time so far and an estimate of what
+    remains."""
+    if math.isnan(it.remaining):
+        rest = "time left unknown (no steady decrease yet)"
+    else:
+        rest = f"about {it.remaining:.0f} s to go"
+    if math.isfinite(it.budget_left):
+        rest += f", budget left {max(it.budget_left, 0.0):.0f} s"
+    stage = f" [{it.stage}]" if it.stage else ""
+    if it.kind == "working":
+        log.info("working on outer iteration %d%s: %.0f s so far; last residual %.2e; %s",
+                 it.iteration + 1, stage, it.elapsed, it.residual, rest)
+        return
+    what = f"outer iteration {it.iteration:3d}"
+    if it.kind == "newton":
+        what += f" (Newton–Krylov, {it.products} Jacobian products, {it.trials} line-search solves)"
+    log.info("%s%s: residual %.2e, marginal error %.2e, Sinkhorn %d it, %.2f s; %.0f s so far, %s",
+             what, stage, it.residual, it.marginal_error, it.sinkhorn_iterations, it.seconds,
+             it.elapsed, rest)
 
 
 class _DirectProgress:

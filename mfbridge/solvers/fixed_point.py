@@ -47,8 +47,8 @@ from threadpoolctl import threadpool_limits
 from mfbridge.errors import ConvergenceWarning, InputError, PrecisionWarning
 from mfbridge.model.problem import BridgeProblem
 from mfbridge.numerics import entropic, observables
-from mfbridge.numerics.anderson import AndersonMixer
-from mfbridge.numerics.propagator import UNIFORMISATION_TAIL, StepOperator, step_tail
+from mfbridge.numerics.clock import Clock
+from mfbridge.numerics.propagator import UNIFORMISATION_TAIL, StepOperator
 from mfbridge.numerics.reference import (
     EdgeRates,
     PairField,
@@ -60,36 +60,12 @@ from mfbridge.result import BridgeResult
 from mfbridge.solvers import multistart, preflight, sanity, small_noise
 from mfbridge.solvers.cost import bridge_cost
 from mfbridge.solvers.options import COUPLING_MAX_CELLS, SolverOptions
-from mfbridge.solvers.stopping import MarginalStall
+from mfbridge.solvers.outer_loop import Iteration, Outcome, Run, Start, iterate
 
-# an outer residual this many times above max(first residual, 1) means the start is outside the
-# basin of the fixed point (transient rises of 100x the best residual occur in converging runs)
-DIVERGENCE_FACTOR = 10.0
-# Sinkhorn tolerance while the outer loop is far out: INNER_FRACTION x the outer residual (at
-# most 10 x INNER_FRACTION), 100x tighter after STAGNATION iterations without a new best
-# residual, down to INNER_FRACTION_MIN. Inexact sub-solves enter V through the potentials,
-# amplified like 1/sigma^2: with 1e-2 alone, sigma = 0.2 stagnated at residual ~3e-2; with 1e-4
-# it converged in 59 outer iterations (n = 128, K = 25). Strong coupling needs it too: the swarm
-# passing an obstacle (tests/test_multistart.py) converges from its tilted starts with 1e-4 and
-# diverges with 1e-2. At sigma = 1, 1e-2 would save ~6% of the sweeps.
-INNER_FRACTION = 1e-4
-INNER_FRACTION_MIN = 1e-6
-STAGNATION = 4
 # largest |omega V| accepted in the log-weights: a double near 1e8 has an ulp of 1.5e-8, so
 # log-domain sums of e^{-omega V} keep ~8 digits; beyond, an iterate has blown up (common
 # practice, no source; measured: a diverging iterate at sigma = 0.04 on 24 cells had |V| ~ 1e33)
 LOG_WEIGHT_MAX = 1e8
-
-
-@dataclass(frozen=True)
-class Iteration:
-    """One outer iteration, as passed to the progress callback."""
-
-    iteration: int
-    residual: float
-    marginal_error: float
-    sinkhorn_iterations: int
-    seconds: float
 
 
 @dataclass
@@ -166,6 +142,18 @@ class _Bridge:
         log_f = sol.log_forward + ref.log_weights - log_half
         return _Solved(sol, p, log_f, log_h, self.potential(p))
 
+    def blown_up(self, phi: np.ndarray, v_bar: np.ndarray) -> bool:
+        """Whether a mixed iterate has left what the discretisation represents: ``phi`` = U +
+        W ⋆ p̄ changes by more than :data:`~mfbridge.solvers.preflight.Z_MAX` across a cell (the
+        start passed that check), or the log-weights ωV̄ exceed :data:`LOG_WEIGHT_MAX` (then
+        log-domain sums of e^{-ωV} have no precision left, and the log-domain steps' stopping
+        test never passes)."""
+        if preflight.largest_cell_drift(phi, self.problem).z > preflight.Z_MAX:
+            return True
+        with np.errstate(invalid="ignore", over="ignore"):
+            weights = np.abs(self.expand(self.omega) * v_bar)
+        return not bool(np.all(weights <= LOG_WEIGHT_MAX))
+
     def correction(self, s: _Solved, ref: entropic.FrozenReference) -> np.ndarray:
         """The potential V (K+1, *shape) from the flow, potentials and Φ of one solve."""
         noise = self.problem.noise
@@ -192,26 +180,6 @@ class _Bridge:
         if not np.all(np.isfinite(c)):
             return np.full_like(c, np.nan)
         return self.scale * self.pair(c)
-
-
-def _blown_up(bridge: _Bridge, phi: np.ndarray, v_bar: np.ndarray) -> bool:
-    """Whether a mixed iterate has left what the discretisation represents: U + W ⋆ p̄ changes by
-    more than :data:`~mfbridge.solvers.preflight.Z_MAX` across a cell (the start passed that
-    check), or the log-weights ωV̄ exceed :data:`LOG_WEIGHT_MAX` (then log-domain sums of
-    e^{-ωV} have no precision left, and the log-domain steps' stopping test never passes)."""
-    if preflight.largest_cell_drift(phi, bridge.problem).z > preflight.Z_MAX:
-        return True
-    with np.errstate(invalid="ignore", over="ignore"):
-        weights = np.abs(bridge.expand(bridge.omega) * v_bar)
-    return not bool(np.all(weights <= LOG_WEIGHT_MAX))
-
-
-def _residual(p: np.ndarray, p_bar: np.ndarray, v: np.ndarray, v_bar: np.ndarray,
-              horizon: float, grid_dim: int) -> float:
-    axes = tuple(range(1, grid_dim + 1))
-    r_p = np.abs(p - p_bar).sum(axis=axes).max()
-    r_v = horizon * (p * np.abs(v - v_bar)).sum(axis=axes).max()
-    return float(r_p + r_v)
 
 
 def solve_bridge(
@@ -249,66 +217,26 @@ def _check_warm_start(problem: BridgeProblem, warm: BridgeResult) -> None:
         )
 
 
-@dataclass
-class _Start:
-    """Where an outer iteration starts."""
-
-    p_bar: np.ndarray
-    v_bar: np.ndarray
-    log_b: np.ndarray
-    # a solution given by the caller: its first sub-problem is solved to sinkhorn_tol, so that a
-    # converged result is a fixed point (a loose first solve moves it by more than tol)
-    solution: bool = False
-
-
-@dataclass
-class _Outcome:
-    status: str
-    solved: _Solved
-    ref: entropic.FrozenReference
-    v_bar: np.ndarray
-    residual: float
-    bridge: _Bridge
-    noise_start: float = 0.0  # first noise of a noise continuation (0: none)
-    stop: str = ""  # why the loop stopped short of tol where retrying cannot help
-
-    @property
-    def log_domain(self) -> bool:
-        return self.bridge.log_domain
-
-    def finite(self) -> bool:
-        """Whether the flow, V and the final scaling can start another attempt (log b may be
-        -inf where ν has no mass)."""
-        log_b = self.solved.sol.log_b
-        return bool(np.all(np.isfinite(self.solved.p)) and np.all(np.isfinite(self.v_bar))
-                    and not np.any(np.isnan(log_b) | (log_b == np.inf)))
-
-    def start(self, noise: float | None = None) -> _Start:
-        """Where to start next; for another noise σ' the potentials are rescaled by
-        (σ/σ')², their leading small-noise order (log-potentials and V are O(1/σ²))."""
-        factor = 1.0 if noise is None else (self.bridge.problem.noise / noise) ** 2
-        return _Start(self.solved.p, factor * self.v_bar, factor * self.solved.sol.log_b)
-
-
 _LOG_NOTE = " (log-domain propagation: the endpoints span more than double precision)"
 
 
-def _attempt(problem: BridgeProblem, scale: float, options: SolverOptions, route: str,
-             start: _Start, history: list[dict[str, float]],
-             callback: Callable[[Iteration], None] | None, log_domain: bool = False
-             ) -> _Outcome:
+def _attempt(problem: BridgeProblem, scale: float, run: Run, start: Start,
+             log_domain: bool = False) -> Outcome:
     """One outer iteration from ``start`` with the interaction ``scale`` × W; with
     ``propagation="auto"`` it moves to log-domain steps when the rational ones underflow where an
     endpoint has mass or the Sinkhorn iteration stalls."""
+    options = run.options
     bridge = _Bridge(problem, scale=scale, log_domain=log_domain or options.propagation == "log",
                      kernel=options.kernel)
     outcome = None
     try:
-        outcome = _iterate(bridge, options, route, start, history, callback)
+        outcome = iterate(bridge, run, start)
     except entropic.UnderflowError:
         if options.propagation != "auto" or bridge.log_domain:
             raise
-    lost = outcome is None or outcome.status == "stalled" or not np.isfinite(outcome.residual)
+    if outcome is not None and outcome.budget_spent:
+        return outcome
+    lost = outcome is None or outcome.status == "stalled" or outcome.lost
     if not bridge.log_domain and lost:
         if options.propagation != "auto":
             assert outcome is not None
@@ -321,46 +249,44 @@ def _attempt(problem: BridgeProblem, scale: float, options: SolverOptions, route
         bridge = _Bridge(problem, scale=scale, log_domain=True, kernel=options.kernel)
         # a diverged attempt may end on a NaN flow: then start again from the given start
         start = outcome.start() if outcome is not None and outcome.finite() else start
-        outcome = _iterate(bridge, options, route, start, history, callback)
+        outcome = iterate(bridge, run, start)
     if outcome.status == "stalled":
         outcome.status = "not_converged"
     return outcome
 
 
-def _noise_continuation(problem: BridgeProblem, options: SolverOptions, route: str,
-                        history: list[dict[str, float]],
-                        callback: Callable[[Iteration], None] | None) -> _Outcome:
+def _noise_continuation(problem: BridgeProblem, run: Run) -> Outcome:
     """Solve with noise σ·2^m, σ·2^(m-1), …, σ (m = ``options.noise_continuation``), each stage
     warm-started from the previous one (ε-scaling of entropic transport: large noise is easy, and
     as σ → 0 the flow tends to the transport interpolation, so it moves little between stages)."""
-    m = options.noise_continuation
+    m = run.options.noise_continuation
     noises = [problem.noise * 2.0 ** (m - j) for j in range(m + 1)]
     stage = dataclasses.replace(problem, noise=noises[0])
-    outcome = _attempt(stage, 1.0, options, route, _cold_start(stage), history,
-                       callback)
-    for noise in noises[1:]:
-        if outcome.status != "converged":
+    run.stage = f"noise continuation, σ = {noises[0]:.3g} (stage 0 of {m})"
+    outcome = _attempt(stage, 1.0, run, _cold_start(stage))
+    for j, noise in enumerate(noises[1:], start=1):
+        if outcome.status != "converged" or outcome.budget_spent:
             break
         start = outcome.start(noise)
         stage = problem if noise == noises[-1] else dataclasses.replace(problem, noise=noise)
-        outcome = _attempt(stage, 1.0, options, route, start, history, callback,
-                           log_domain=outcome.log_domain)
+        run.stage = f"noise continuation, σ = {noise:.3g} (stage {j} of {m})"
+        outcome = _attempt(stage, 1.0, run, start, log_domain=outcome.log_domain)
     outcome.noise_start = noises[0]
     return outcome
 
 
-def _closer(a: _Outcome, b: _Outcome) -> _Outcome:
+def _closer(a: Outcome, b: Outcome) -> Outcome:
     """The converged one of two outcomes for the same problem, else the one with the smaller
     finite residual (``a`` on ties)."""
-    def rank(o: _Outcome) -> tuple[bool, float]:
+    def rank(o: Outcome) -> tuple[bool, float]:
         return (o.status != "converged",
                 o.residual if np.isfinite(o.residual) and o.finite() else np.inf)
     return b if rank(b) < rank(a) else a
 
 
-def _cold_start(problem: BridgeProblem) -> _Start:
+def _cold_start(problem: BridgeProblem) -> Start:
     p_bar = problem.linear_flow()
-    return _Start(p_bar, np.zeros_like(p_bar), np.zeros(problem.grid.shape))
+    return Start(p_bar, np.zeros_like(p_bar), np.zeros(problem.grid.shape))
 
 
 def _solve(problem: BridgeProblem, options: SolverOptions,
@@ -382,21 +308,22 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
         start = _cold_start(problem)
     else:
         # a result without Schrödinger potentials (the direct solver's) has NaN there
-        start = _Start(warm_start.masses,
-                       np.nan_to_num(warm_start.correction) if options.method == "optimal"
-                       else np.zeros_like(warm_start.correction),
-                       np.nan_to_num(warm_start.log_backward[-1], nan=0.0, neginf=-745.0),
-                       solution=True)
+        start = Start(warm_start.masses,
+                      np.nan_to_num(warm_start.correction) if options.method == "optimal"
+                      else np.zeros_like(warm_start.correction),
+                      np.nan_to_num(warm_start.log_backward[-1], nan=0.0, neginf=-745.0),
+                      solution=True)
     scaled = _Bridge(problem)
     preflight.check_scales(problem, start.p_bar, scaled.pair, scaled.confinement)
-    history: list[dict[str, float]] = []
-    outcome = _attempt(problem, 1.0, options, route, start, history, callback)
+    run = Run(options, route, Clock(options.time_budget), callback)
+    outcome = _attempt(problem, 1.0, run, start)
     # the answer must be for the problem as given: a continuation that stops early holds a flow
     # for a larger noise or a weaker interaction, which is never returned
     note = _LOG_NOTE if outcome.log_domain and options.kernel == "chain" else kernel_note
     answer, stopped = outcome, ""
-    if not outcome.stop and outcome.status != "converged" and options.noise_continuation > 0:
-        outcome = _noise_continuation(problem, options, route, history, callback)
+    if (not outcome.stop and outcome.status != "converged" and options.noise_continuation > 0
+            and not outcome.budget_spent):
+        outcome = _noise_continuation(problem, run)
         if outcome.bridge.problem.noise != problem.noise:
             stopped = (f"; continuation in the noise stopped at σ = "
                        f"{outcome.bridge.problem.noise:.3g}")
@@ -405,13 +332,13 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
             note = (f" (by continuation in the noise from {outcome.noise_start:.3g} over "
                     f"{options.noise_continuation} stages)")
     if (not answer.stop and answer.status != "converged" and options.continuation > 0
-            and not outcome.bridge.pair.is_zero):
+            and not outcome.bridge.pair.is_zero and not outcome.budget_spent):
         m = options.continuation
         start = _cold_start(problem)
         for j in range(1, m + 1):
-            outcome = _attempt(problem, j / m, options, route, start, history, callback,
-                               log_domain=outcome.log_domain)
-            if outcome.status != "converged":
+            run.stage = f"interaction × {j / m:.3g} (stage {j} of {m})"
+            outcome = _attempt(problem, j / m, run, start, log_domain=outcome.log_domain)
+            if outcome.status != "converged" or outcome.budget_spent:
                 break
             start = outcome.start()
         if outcome.bridge.scale == 1.0:
@@ -422,8 +349,14 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
             stopped += (f"; continuation in the interaction strength stopped at stage {j} of "
                         f"{m} (W × {j / m:.3g}: {outcome.status.replace('_', ' ')}, residual "
                         f"{outcome.residual:.2e})")
+    if outcome.budget_spent:
+        stopped += (f"; the time budget of {options.time_budget:g} s ran out (solver.time_budget)"
+                    f" during {run.stage or 'the first attempt'}")
     outcome = answer
     note += stopped
+    history = run.history
+    if outcome.solved is None:
+        return _unsolved_result(outcome, options, route, note, history, start_time)
     bridge = outcome.bridge
     solved, ref = outcome.solved, outcome.ref
     if options.coupling and solved.sol.coupling is None:
@@ -461,93 +394,9 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
         sanity.gate(problem, result, options.tol, peclet, frozen=options.method == "frozen")
     if options.starts > 1:
         result.start = "cold" if warm_start is None else "warm"
-        result = _other_starts(problem, options, route, result, callback)
+        result = _other_starts(problem, run, result)
         result.timings["total"] = time.perf_counter() - start_time
     return result
-
-
-def _iterate(bridge: _Bridge, options: SolverOptions, route: str, start: _Start,
-             history: list[dict[str, float]],
-             callback: Callable[[Iteration], None] | None) -> _Outcome:
-    """The outer fixed-point iteration from ``start``; appends to ``history``."""
-    problem = bridge.problem
-    grid = problem.grid
-    inner = entropic.solve_dense if route == "dense" else entropic.solve_operator
-    # Anderson-mixed Sinkhorn with the Gaussian steps (small noise: plain Sinkhorn is slow)
-    accelerate = ({"anderson": small_noise.SINKHORN_ANDERSON}
-                  if route != "dense" and bridge.kernel == "gaussian" else {})
-    mu, nu = problem.initial, problem.final
-    interacting = not bridge.pair.is_zero
-    optimal = options.method == "optimal" and interacting
-    p_bar, v_bar, log_b = start.p_bar, start.v_bar, start.log_b
-    mixer = AndersonMixer(options.anderson, options.damping)
-    loose = interacting and not start.solution
-    inner_tol = max(options.sinkhorn_tol, 1e-3) if loose else options.sinkhorn_tol
-    status, residual, solved, ref = "not_converged", np.inf, None, None
-    first: float | None = None
-    best, since_best, fraction = np.inf, 0, INNER_FRACTION
-    stall, stop = MarginalStall(options.tol, options.sinkhorn_tol, route), ""
-    for _ in range(options.max_iter):
-        t0 = time.perf_counter()
-        phi = bridge.potential(p_bar)
-        if solved is not None and _blown_up(bridge, phi, v_bar):
-            status = "diverged"
-            break
-        ref = bridge.reference(p_bar, v_bar, step_tail(inner_tol, bridge.k_steps), phi)
-        sol = inner(ref, mu, nu, log_b, tol=inner_tol, max_iter=options.sinkhorn_max_iter,
-                    **accelerate)
-        log_b = sol.log_b
-        solved = bridge.solved(sol, ref, v_bar)
-        v_new = bridge.correction(solved, ref) if optimal else np.zeros_like(v_bar)
-        residual = (
-            _residual(solved.p, p_bar, v_new, v_bar, problem.horizon, grid.dim)
-            if interacting else 0.0
-        )
-        seconds = time.perf_counter() - t0
-        history.append({"residual": residual, "marginal_error": sol.marginal_error,
-                        "sinkhorn_iterations": float(sol.iterations), "seconds": seconds,
-                        "interaction_scale": bridge.scale})
-        if callback is not None:
-            callback(Iteration(len(history), residual, sol.marginal_error, sol.iterations,
-                               seconds))
-        first = residual if first is None else first
-        if (not np.isfinite(residual) or not np.isfinite(sol.marginal_error)
-                or residual > DIVERGENCE_FACTOR * max(first, 1.0)):
-            status = "diverged"
-            break
-        if (sol.iterations >= options.sinkhorn_max_iter and sol.marginal_error > inner_tol
-                and not bridge.log_domain):
-            status = "stalled"  # the entropic problem cannot be solved to working precision
-            break
-        floor = small_noise.roundoff_floor(bridge.kernel, problem, solved.p, v_new)
-        if residual <= max(options.tol, floor) and sol.marginal_error <= options.tol:
-            status = "converged"
-            break
-        stop = stall.check(residual, sol.marginal_error, inner_tol)
-        if stop:
-            break
-        if not interacting:
-            continue  # Sinkhorn goes on from log_b
-        if residual < best:
-            best, since_best = residual, 0
-        else:
-            since_best += 1
-        if since_best >= STAGNATION and fraction > INNER_FRACTION_MIN:
-            # inexact sub-solves enter V amplified like 1/sigma^2: at small noise the outer
-            # iteration stagnates at the sub-solves' error, so solve them more exactly
-            fraction, since_best = fraction * 1e-2, 0
-        inner_tol = max(options.sinkhorn_tol, min(10 * fraction, fraction * residual))
-        if optimal:
-            x = np.concatenate([p_bar.ravel(), v_bar.ravel()])
-            gx = np.concatenate([solved.p.ravel(), v_new.ravel()])
-        else:
-            x, gx = p_bar.ravel(), solved.p.ravel()
-        x_next = mixer.next(x, gx)
-        p_bar = x_next[: p_bar.size].reshape(p_bar.shape)
-        if optimal:
-            v_bar = x_next[p_bar.size :].reshape(v_bar.shape)
-    assert solved is not None and ref is not None
-    return _Outcome(status, solved, ref, v_bar, residual, bridge, stop=stop)
 
 
 def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: np.ndarray,
@@ -605,32 +454,68 @@ def _result(bridge: _Bridge, s: _Solved, ref: entropic.FrozenReference, v_bar: n
 
 
 
+def _unsolved_result(outcome: Outcome, options: SolverOptions, route: str, note: str,
+                     history: list[dict[str, float]], start_time: float) -> BridgeResult:
+    """The answer when the time budget ran out before the first solve finished: the starting
+    flow, no potentials, cost NaN, status not_converged."""
+    assert outcome.unsolved is not None
+    bridge, start = outcome.bridge, outcome.unsolved
+    grid, noise = bridge.problem.grid, bridge.problem.noise
+    message = (f"not converged: no outer iteration finished{note}; the result holds the "
+               f"initial guess (no potentials, cost NaN): raise solver.time_budget or coarsen "
+               f"the grid")
+    warnings.warn(ConvergenceWarning(message), stacklevel=3)
+    p = start.p_bar
+    nan = np.full_like(p, np.nan)
+    mean, cov = observables.moments(p, grid)
+    return BridgeResult(
+        grid=grid, times=bridge.problem.times, density=p / grid.cell_volume,
+        control=np.full((*p.shape, grid.dim), np.nan), log_forward=nan, log_backward=nan.copy(),
+        correction=start.v_bar, mean=mean, cov=cov,
+        free_energy=observables.free_energy(p, grid, noise, bridge.confinement, bridge.pair),
+        entropy=observables.entropy(p, grid), cost=np.nan, cost_kinetic=np.nan,
+        cost_drift=np.nan, cost_free_energy=np.nan, noise=noise, method=options.method,
+        route=route, status="not_converged", message=message, iterations=len(history),
+        residual=np.inf, marginal_error=np.nan, history=history,
+        timings={"solve": time.perf_counter() - start_time,
+                 "total": time.perf_counter() - start_time},
+        model={"confinement": _describe(bridge.problem.confinement),
+               "interaction": _describe(bridge.problem.interaction)})
+
+
 def _describe(obj: object) -> dict[str, object]:
     describe = getattr(obj, "describe", None)
     return describe() if callable(describe) else {"repr": repr(obj)}
 
 
-def _other_starts(problem: BridgeProblem, options: SolverOptions, route: str,
-                  first: BridgeResult, callback: Callable[[Iteration], None] | None
-                  ) -> BridgeResult:
+def _other_starts(problem: BridgeProblem, run: Run, first: BridgeResult) -> BridgeResult:
     """Run the outer loop from ``options.starts - 1`` tilted guesses (no continuation: a guess
-    that fails is reported as such) and return :func:`mfbridge.solvers.multistart.gather` of all."""
+    that fails is reported as such; none after the time budget is spent) and return
+    :func:`mfbridge.solvers.multistart.gather` of all."""
+    options = run.options
     found = [first]
     for label, p_bar in multistart.tilted_flows(problem, options.starts - 1):
-        history: list[dict[str, float]] = []
-        start = _Start(p_bar, np.zeros_like(p_bar), np.zeros(problem.grid.shape))
+        if run.clock.spent:
+            first.message += f"; start {label} and later ones skipped: time budget spent"
+            break
+        run.history, run.stage = [], f"start {label}"
+        start = Start(p_bar, np.zeros_like(p_bar), np.zeros(problem.grid.shape))
         try:
-            outcome = _attempt(problem, 1.0, options, route, start, history, callback)
+            outcome = _attempt(problem, 1.0, run, start)
         except entropic.UnderflowError:
             continue
-        it, res = len(history), outcome.residual
+        if outcome.solved is None:
+            continue
+        it, res = len(run.history), outcome.residual
         message = (f"{outcome.status.replace('_', ' ')} in {it} outer iterations from start "
                    f"{label}: residual {res:.2e}, marginal error "
                    f"{outcome.solved.sol.marginal_error:.2e}")
-        seconds = float(sum(h["seconds"] for h in history))
-        result = _result(outcome.bridge, outcome.solved, outcome.ref, outcome.v_bar, options,
-                         route, outcome.status, message, it, res, history,
-                         {"solve": seconds, "total": seconds})
+        seconds = float(sum(h["seconds"] for h in run.history))
+        with np.errstate(**({} if outcome.status == "converged"
+                            else {"over": "ignore", "invalid": "ignore"})):
+            result = _result(outcome.bridge, outcome.solved, outcome.ref, outcome.v_bar,
+                             options, run.route, outcome.status,
+                             message, it, res, run.history, {"solve": seconds, "total": seconds})
         result.start = label
         found.append(result)
     return multistart.gather(found, options.tol)

@@ -8,13 +8,17 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from mfbridge.errors import InputError, unknown_name
+from mfbridge.errors import InputError, is_real_number, unknown_name
 from mfbridge.solvers.small_noise import KERNELS
 
 METHODS = ("optimal", "frozen")
 PROPAGATIONS = ("auto", "rational", "log")
 COUPLING_MAX_CELLS = 4096
 ROUTES = ("auto", "operator", "dense")
+OUTER_METHODS = ("auto", "anderson", "newton")
+# seconds: long enough for every documented run (3D 32^3 x 100 steps: 53 s), short enough that a
+# run that cannot converge answers within minutes
+DEFAULT_TIME_BUDGET = 600.0
 MAX_STARTS = 64
 
 
@@ -30,7 +34,14 @@ class SolverOptions:
     * ``tol``: stop when the self-consistency residual
       :math:`\\max_k\\|p_k - \\bar p_k\\|_1 + T\\max_k \\sum_i p_{k,i}|V_{k,i} - \\bar V_{k,i}|`
       and the L1 error of the initial marginal are both below it;
+    * ``outer``: the outer method (:mod:`mfbridge.solvers.outer_loop`): ``"auto"`` (Anderson
+      mixing while it makes progress, then Newton–Krylov steps that each decrease the residual
+      norm, from the best iterate), ``"anderson"`` (Anderson only) or ``"newton"``
+      (Newton–Krylov from the start);
     * ``anderson`` (history depth, 0 = plain iteration) and ``damping`` (mixing weight in (0, 1]);
+    * ``time_budget``: wall-clock seconds for the whole solve (every attempt, continuation and
+      start); when spent the solve returns its best iterate with status ``"not_converged"``
+      (``None``: no limit);
     * ``sinkhorn_tol``, ``sinkhorn_max_iter``: the entropic sub-problem's own stopping rule (its
       tolerance is loosened to 1e-4 × the outer residual, at most 1e-3, while the outer loop
       is far out, and tightened 100-fold whenever the outer residual stalls);
@@ -69,6 +80,8 @@ class SolverOptions:
     propagation: str = "auto"
     starts: int = 1
     kernel: str = "auto"
+    outer: str = "auto"
+    time_budget: float | None = DEFAULT_TIME_BUDGET
 
     def __post_init__(self) -> None:
         if self.method not in METHODS:
@@ -79,6 +92,8 @@ class SolverOptions:
             raise unknown_name("route", self.route, ROUTES)
         if self.propagation not in PROPAGATIONS:
             raise unknown_name("propagation", self.propagation, PROPAGATIONS)
+        if self.outer not in OUTER_METHODS:
+            raise unknown_name("outer method", self.outer, OUTER_METHODS)
         checks = [
             ("tol", self.tol > 0),
             ("sinkhorn_tol", self.sinkhorn_tol > 0),
@@ -95,6 +110,8 @@ class SolverOptions:
              and 0 <= self.noise_continuation <= 10),
             ("starts", isinstance(self.starts, int) and not isinstance(self.starts, bool)
              and 1 <= self.starts <= MAX_STARTS),
+            ("time_budget", self.time_budget is None
+             or (is_real_number(self.time_budget) and self.time_budget > 0)),
         ]
         for name, ok in checks:
             if not ok:
