@@ -30,7 +30,9 @@ FREE = ("grid.shape=64", "steps=10", "figures=false", "interaction=none", "endpo
 
 
 @pytest.mark.parametrize(("override", "needs"), [
-    ("grid.shape=10000000", "88.3 GB"),  # contour LU factors 68 GB, path arrays 15.8 GB
+    # contour LU factors 68 GB for the steps and as much for the reported J's half steps,
+    # path arrays 15.8 GB
+    ("grid.shape=10000000", "156 GB"),
     ("steps=100000000", "922 GB"),  # path arrays: 18 x 8 (K+1) n bytes
 ])
 def test_refused_before_allocating(override: str, needs: str,
