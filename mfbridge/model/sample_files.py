@@ -31,7 +31,6 @@ expected and what was found.
 from __future__ import annotations
 
 import csv
-import hashlib
 import io
 import os
 import zipfile
@@ -44,6 +43,7 @@ import numpy as np
 
 from mfbridge.errors import InputError
 from mfbridge.model.grid import MAX_DIM, _to_plain
+from mfbridge.result import sha256
 
 __all__ = ["FORMATS", "REPO_ROOT", "SampleData", "plain_list", "read_samples", "resolve_path"]
 
@@ -81,14 +81,6 @@ def resolve_path(path: Any, what: str = "sample file") -> Path:
                              f"({', '.join(FORMATS)})")
     where = " or ".join(str(p) for p in places)
     raise InputError(f"the {what} {text!r} does not exist (looked for {where})")
-
-
-def _sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 # --------------------------------------------------------------------------- loaded data
@@ -453,7 +445,7 @@ def _validate(path: Path, values: np.ndarray, raw_w: np.ndarray | None, labels: 
                              "carries mass; expected a positive total weight")
         scaled = raw_w / top  # in [0, 1]: the sum cannot overflow
         w = scaled / scaled.sum()
-    return SampleData(values, w, tuple(labels), np.asarray(rows), row_kind, path, _sha256(path))
+    return SampleData(values, w, tuple(labels), np.asarray(rows), row_kind, path, sha256(path))
 
 
 def read_samples(path: Path, file_format: str, columns: list[Any] | None, weights: str | None,
