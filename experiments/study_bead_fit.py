@@ -15,7 +15,9 @@ densities instead of the small 0.04 µm kernel, to show the smoothing bias. Writ
 ``bead_fit.md`` and its figures into experiments/out/reports/ (experiments/reports/ with
 --update-committed); the fit folders go to the git-ignored ``experiments/runs/bead_fit/``.
 
-    python experiments/study_bead_fit.py [--update-committed] [--quiet]
+    python experiments/study_bead_fit.py [--update-committed] [--quiet] [--jobs 2]
+
+``--jobs`` is the fits' ``jobs=`` (segments solved at once; the results do not depend on it).
 """
 
 from __future__ import annotations
@@ -25,7 +27,7 @@ import json
 import shutil
 import time
 
-from study_common import FIGURE_DIR, REPORT_DIR, ROOT, add_output_flag, mfbridge
+from study_common import FIGURE_DIR, REPORT_DIR, ROOT, Conditions, add_output_flag, mfbridge
 
 RUNS = ROOT / "experiments" / "runs" / "bead_fit"
 REPORT = REPORT_DIR / "bead_fit.md"
@@ -89,7 +91,11 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     add_output_flag(parser)
     parser.add_argument("--quiet", action="store_true", help="do not echo the fits' output")
-    parser.parse_args()
+    parser.add_argument("--jobs", type=int, default=2,
+                        help="segments solved at once (the fits' jobs=; default 2)")
+    args = parser.parse_args()
+    BASE[BASE.index("jobs=2")] = f"jobs={args.jobs}"
+    conditions = Conditions()
     RUNS.mkdir(parents=True, exist_ok=True)
     FIGURE_DIR.mkdir(parents=True, exist_ok=True)
     records, seconds, logs = {}, {}, {}
@@ -191,7 +197,7 @@ def main() -> None:
         "(`method: histogram`).",
         "",
         f"Run times on 2 cores (other jobs running): {sum(seconds.values()):.0f} s for the three "
-        "fits with profiles.",
+        f"fits with profiles (jobs={args.jobs}). {conditions.sentence()}",
     ]
     REPORT.write_text("\n".join(lines) + "\n")
     print(REPORT.read_text())

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import datetime
 import os
 import subprocess
 import sys
@@ -93,3 +94,24 @@ def timing_sentence(seconds: float, solver_total: float) -> str:
         "invocation (a re-run skips complete runs, so only a first run measures the sweep); "
         f"solver time\nsummed over the runs: {solver_total:.0f} s."
     )
+
+
+class Conditions:
+    """The measurement conditions of a study run, for its report: created at the start (UTC
+    time, 1-minute load average, git commit of this checkout), :meth:`sentence` at the end."""
+
+    def __init__(self) -> None:
+        from mfbridge.runs.records import git_state
+
+        self.start = datetime.datetime.now(datetime.timezone.utc)
+        self.load = os.getloadavg()[0]
+        state = git_state(ROOT)
+        self.commit = ("unknown commit" if state is None else
+                       state["commit"][:7] + (" with uncommitted changes" if state["dirty"]
+                                              else ""))
+
+    def sentence(self) -> str:
+        end = datetime.datetime.now(datetime.timezone.utc)
+        return (f"Measured {self.start:%Y-%m-%d %H:%M}–{end:%H:%M} UTC at commit {self.commit}; "
+                f"1-minute load average {self.load:.1f} at the start, "
+                f"{os.getloadavg()[0]:.1f} at the end (2 cores shared).")

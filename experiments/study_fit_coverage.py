@@ -14,6 +14,11 @@ and the grid's cells.
 
     python experiments/study_fit_coverage.py [--seeds 20] [--population 5000]
 
+A study cut short is resumed with ``--first-seed`` (seeds first-seed, first-seed + 1, ...; the
+seeds' data do not depend on which seeds run before them); ``--estimates`` picks density
+estimates of either case by name (e.g. ``--seeds 0 --seeds-2d 4 --first-seed 16 --estimates
+histogram``).
+
 Writes fit_coverage.md into experiments/out/results/ (experiments/results/ with
 --update-committed).
 """
@@ -28,7 +33,7 @@ from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
-from study_common import ROOT, add_output_flag, output_dir
+from study_common import ROOT, Conditions, add_output_flag, output_dir
 
 from mfbridge.model.grid import Grid
 from mfbridge.model.potentials import GaussianCore, Harmonic
@@ -128,29 +133,50 @@ def coverage_rows(results: dict[str, np.ndarray]) -> list[str]:
     return lines
 
 
+def seed_rows(results: dict[str, np.ndarray], seeds: range) -> list[str]:
+    """Per seed and density estimate: θ̂, se and the interval (so a resumed study's seeds can
+    be pooled with these)."""
+    lines = ["| seed | density estimate | θ̂ | se | 95% profile interval | covers the truth |",
+             "| ---: | --- | ---: | ---: | --- | --- |"]
+    for i, seed in enumerate(seeds):
+        for name, rows in results.items():
+            est, se, lo, hi = rows[i]
+            lines.append(f"| {seed} | {name} | {est:.4f} | {se:.4f} | [{lo:.4f}, {hi:.4f}] | "
+                         f"{'yes' if lo <= STRENGTH <= hi else 'no'} |")
+    return lines
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seeds", type=int, default=20, help="seeds of the 1D case (0 skips it)")
     parser.add_argument("--population", type=int, default=5000)
     parser.add_argument("--seeds-2d", type=int, default=None,
                         help="seeds of the 2D case (default: --seeds; 0 skips it)")
+    parser.add_argument("--first-seed", type=int, default=0,
+                        help="first seed of both cases (resumes a study cut short)")
+    names = [n for case in (CASE_1D, CASE_2D) for n, _ in case.estimates]
     parser.add_argument("--estimates", default=None,
-                        help="comma-separated names of the 1D density estimates to fit "
-                             f"(default all: {', '.join(n for n, _ in CASE_1D.estimates)})")
+                        help="comma-separated names of the density estimates to fit, in either "
+                             f"case (default all: {', '.join(dict.fromkeys(names))})")
     add_output_flag(parser)
     args = parser.parse_args()
     start = time.perf_counter()
-    case_1d = CASE_1D
+    conditions = Conditions()
+    case_1d, case_2d = CASE_1D, CASE_2D
     if args.estimates is not None:
         wanted = [w.strip() for w in args.estimates.split(",")]
-        unknown = sorted(set(wanted) - {n for n, _ in CASE_1D.estimates})
+        unknown = sorted(set(wanted) - set(names))
         if unknown:
             parser.error(f"unknown estimates {unknown}")
-        case_1d = replace(CASE_1D, estimates=tuple(e for e in CASE_1D.estimates
-                                                   if e[0] in wanted))
-    one = study(case_1d, range(args.seeds), args.population) if args.seeds > 0 else {}
+        case_1d, case_2d = (replace(case, estimates=tuple(e for e in case.estimates
+                                                          if e[0] in wanted))
+                            for case in (CASE_1D, CASE_2D))
     seeds_2d = args.seeds if args.seeds_2d is None else args.seeds_2d
-    two = study(CASE_2D, range(seeds_2d), args.population) if seeds_2d > 0 else {}
+    first = args.first_seed
+    one = (study(case_1d, range(first, first + args.seeds), args.population)
+           if args.seeds > 0 and case_1d.estimates else {})
+    two = (study(case_2d, range(first, first + seeds_2d), args.population)
+           if seeds_2d > 0 and case_2d.estimates else {})
     half = math.sqrt(3.841458820694124)
     lines = [
         "# Coverage of the fitted intervals on synthetic populations",
@@ -161,12 +187,16 @@ def main() -> None:
         "pair forces; `python experiments/study_fit_coverage.py`.",
         "",
     ]
+    if first:
+        lines += [f"Seeds {first} and on (`--first-seed {first}`).", ""]
     if one:
         lines += [
             f"1D (beads: start N(−1, 0.15²), trap stiffness 1, core range 0.4, σ = 0.5; "
             f"{CASE_1D.cells} cells, {CASE_1D.steps} steps):",
             "",
             *coverage_rows(one),
+            "",
+            *seed_rows(one, range(first, first + args.seeds)),
             "",
         ]
     if two:
@@ -176,9 +206,11 @@ def main() -> None:
             "",
             *coverage_rows(two),
             "",
+            *seed_rows(two, range(first, first + seeds_2d)),
+            "",
         ]
     lines += [
-        f"{time.perf_counter() - start:.0f} s in all.",
+        f"{time.perf_counter() - start:.0f} s in all. {conditions.sentence()}",
     ]
     OUT.parent.mkdir(parents=True, exist_ok=True)
     OUT.write_text("\n".join(lines) + "\n")
