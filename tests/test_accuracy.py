@@ -23,13 +23,13 @@ import warnings
 import numpy as np
 import pytest
 
-from mfbridge.errors import SuspectResultWarning
+from mfbridge.errors import InputError, SuspectResultWarning
 from mfbridge.model.endpoints import Gaussian, GaussianMixture
 from mfbridge.model.grid import Grid
 from mfbridge.model.potentials import DoubleWell, GaussianCore, Harmonic, HarmonicInteraction, Morse
 from mfbridge.model.problem import BridgeProblem
 from mfbridge.result import STATUSES
-from mfbridge.solvers import sanity
+from mfbridge.solvers import preflight, sanity
 from mfbridge.solvers.fixed_point import SolverOptions, solve_bridge
 
 MORSE_LIMIT = 1.63165
@@ -129,21 +129,61 @@ def test_feasible_flow_cost_in_2d_uses_a_valid_flux():
     np.testing.assert_allclose(div, -(nu - mu), atol=1e-12)  # measured 3e-17
 
 
+def _coarse_small_noise(cells: int, noise: float = 0.04) -> BridgeProblem:
+    # issue 12: 24 cells on [-6, 6], N(-2, 0.5) -> N(2, 0.5), Gaussian core (strength 0.5,
+    # range 1), sigma = 0.04, 100 steps
+    return BridgeProblem(grid=Grid(-6.0, 6.0, cells), initial=Gaussian(-2.0, 0.5),
+                         final=Gaussian(2.0, 0.5), noise=noise, horizon=1.0, steps=100,
+                         interaction=GaussianCore(0.5, 1.0))
+
+
+def test_small_noise_on_a_coarse_grid_is_refused_never_converged():
+    # issue 12: this case must never be called converged; it may end "suspect" or be refused up
+    # front. Measured before the refusal: with Anderson alone (c5ead38~1) the frozen iteration
+    # stopped after 57 outer iterations and 532 s (load ~8) at residual 8.9e-10 on a flow of
+    # J = 4.0e5, against W2^2 / (2 sigma^2 T) = 5000 (entropic OT tends to OT: Carlier, Duval,
+    # Peyré & Schmitzer, SIAM J. Math. Anal. 2017): suspect; with the Newton-Krylov outer loop
+    # it ran the whole 600 s budget (193 outer iterations) and ended not_converged. No number of
+    # steps resolves this noise here: sigma sqrt(T) = 0.04 is 0.08 cells (the Gaussian steps
+    # need sigma sqrt(dt) >= 0.7 cells) and the chain's estimated cell Péclet number is
+    # (|m1 - m0| / T) h / (sigma^2 / 2) = 4 x 0.5 / 8e-4 = 2500: refused in 0.05 s.
+    for method in ("frozen", "optimal"):
+        with pytest.raises(InputError) as info:
+            solve_bridge(_coarse_small_noise(24), SolverOptions(method=method))
+        message = str(info.value)
+        assert "refused before solving" in message and "no number of time steps" in message
+        assert "Péclet number is 2500" in message and "σ√T = 0.08 cells" in message
+        # cells for sigma sqrt(dt) = 0.7 h at 100 steps: 24 x 0.7 / 0.008 = 2100
+        assert "at least 2100 cells" in message
+    # not refused where fewer steps would resolve the noise with the Gaussian steps (sigma =
+    # 0.36: sigma sqrt(T) = 0.72 cells), nor with the cells the message asks for; refused at
+    # sigma = 0.1 (0.2 cells, Péclet number 400)
+    preflight.check_resolution(_coarse_small_noise(24, noise=0.36))
+    preflight.check_resolution(_coarse_small_noise(2100))
+    with pytest.raises(InputError, match="Péclet number is 400"):
+        preflight.check_resolution(_coarse_small_noise(24, noise=0.1))
+
+
 @pytest.mark.slow
-def test_small_noise_on_a_coarse_grid_is_suspect_not_converged():
-    # issue 12: frozen method, 24 cells on [-6, 6], N(-2, 0.5) -> N(2, 0.5), Gaussian core
-    # (strength 0.5, range 1), sigma = 0.04: the iteration stops with residual 8e-10 on a flow
-    # of J = 4.0e5 (1.7e51 by the old trapezoid rule), against W2^2 / (2 sigma^2 T) = 5000
-    # (entropic OT tends to OT: Carlier, Duval, Peyré & Schmitzer, SIAM J. Math. Anal. 2017)
-    problem = BridgeProblem(grid=Grid(-6.0, 6.0, 24), initial=Gaussian(-2.0, 0.5),
-                            final=Gaussian(2.0, 0.5), noise=0.04, horizon=1.0, steps=100,
-                            interaction=GaussianCore(0.5, 1.0))
+def test_frozen_chain_on_an_unresolved_grid_is_suspect_not_converged():
+    # The frozen method with the jump chain on the linear-quadratic reference case at sigma =
+    # 0.1, 256 cells x 50 steps (estimated cell Péclet number 23, sigma sqrt(T) = 3.2 cells: not
+    # refused). Reported "converged" with J = 2.53e7 before the sanity gate (trapezoid J). The
+    # iteration stops at residual 4.4e-10 on a flow of J = 3891.8 (measured), above the
+    # displacement interpolation's 708.4 scored in the flow's own interaction field (the frozen
+    # bridge minimises J in that field); the exact optimal J is 394.81 (Bunne, Hsieh, Cuturi &
+    # Krause, AISTATS 2023; mfbridge.solvers.linear_quadratic): suspect, naming the Péclet number.
+    problem = BridgeProblem(grid=Grid(-4.0, 4.0, 256), initial=Gaussian(-1.0, 0.16),
+                            final=Gaussian(1.2, 0.49), noise=0.1, horizon=1.0, steps=50,
+                            confinement=Harmonic(1.0), interaction=HarmonicInteraction(1.5))
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        result = solve_bridge(problem, SolverOptions(method="frozen"))
+        result = solve_bridge(problem, SolverOptions(method="frozen", kernel="chain"))
     assert result.status == "suspect", result.message
     assert "displacement interpolation" in result.message and "Péclet" in result.message
     assert any(issubclass(w.category, SuspectResultWarning) for w in caught)
+    outcome = sanity.check(problem, result.masses, result.cost, 1e-9, frozen=True)
+    assert result.cost > 2 * outcome.feasible_cost, (result.cost, outcome.feasible_cost)
 
 
 # ----------------------------------------------------------------------- error estimate

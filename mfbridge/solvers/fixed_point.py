@@ -143,12 +143,12 @@ class _Bridge:
         return _Solved(sol, p, log_f, log_h, self.potential(p))
 
     def blown_up(self, phi: np.ndarray, v_bar: np.ndarray) -> bool:
-        """Whether a mixed iterate has left what the discretisation represents: ``phi`` = U +
-        W ⋆ p̄ changes by more than :data:`~mfbridge.solvers.preflight.Z_MAX` across a cell (the
-        start passed that check), or the log-weights ωV̄ exceed :data:`LOG_WEIGHT_MAX` (then
-        log-domain sums of e^{-ωV} have no precision left, and the log-domain steps' stopping
-        test never passes)."""
-        if preflight.largest_cell_drift(phi, self.problem).z > preflight.Z_MAX:
+        """Whether a mixed iterate has left what the discretisation represents: the steps built
+        on ``phi`` = U + W ⋆ p̄ are beyond double precision
+        (:func:`~mfbridge.solvers.preflight.representable`; the start passed that check), or
+        the log-weights ωV̄ exceed :data:`LOG_WEIGHT_MAX` (then log-domain sums of e^{-ωV}
+        have no precision left, and the log-domain steps' stopping test never passes)."""
+        if not preflight.representable(phi, self.problem, self.kernel):
             return True
         with np.errstate(invalid="ignore", over="ignore"):
             weights = np.abs(self.expand(self.omega) * v_bar)
@@ -314,7 +314,8 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
                       np.nan_to_num(warm_start.log_backward[-1], nan=0.0, neginf=-745.0),
                       solution=True)
     scaled = _Bridge(problem)
-    preflight.check_scales(problem, start.p_bar, scaled.pair, scaled.confinement)
+    preflight.check_scales(problem, start.p_bar, scaled.pair, scaled.confinement, kernel)
+    preflight.check_resolution(problem)
     run = Run(options, route, Clock(options.time_budget), callback)
     outcome = _attempt(problem, 1.0, run, start)
     # the answer must be for the problem as given: a continuation that stops early holds a flow
