@@ -279,6 +279,25 @@ def test_check_fails_on_non_finite_particles(finished: Path, tmp_path: Path,
     assert not (folder / check.CHECK_FILE).exists()
 
 
+def test_check_with_one_seed_succeeds(finished: Path, tmp_path: Path,
+                                      capsys: pytest.CaptureFixture[str]) -> None:
+    """Before: one seed gave exit 6 ("non-finite values (w1_T_sem)"): the standard error over
+    seeds is undefined for one seed (NaN by design), not a failed simulation. Now: exit 0, the
+    table shows "-", check.json holds null, and every other number is finite."""
+    import json
+    import math
+
+    folder = _copy(finished, tmp_path / "run")
+    code = check.main([str(folder), "--particles", "50", "--seed", "0", "--quiet",
+                       "--no-figures"])
+    out = capsys.readouterr().out
+    assert code == 0, out
+    row = json.loads((folder / check.CHECK_FILE).read_text())["table"][0]
+    assert row["seeds"] == 1 and row["w1_T_sem"] is None
+    assert all(math.isfinite(v) for k, v in row.items() if k != "w1_T_sem" and v is not None)
+    assert out.splitlines()[1].split()[3] == "-"
+
+
 # ------------------------------------------------------------------------------- disk full
 
 

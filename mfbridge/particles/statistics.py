@@ -166,7 +166,7 @@ class ConvergenceRow:
     """Seed-averaged numbers for one N: terminal W₁ to ρ_T (mean and standard error over
     seeds), W₁ to ν at T, worst W₁ over output times, pooled Girsanov cost and its interval:
     the 95% sampling interval widened by the grid's own uncertainty on J (|J − J_u|, see
-    :class:`CheckReport`)."""
+    :class:`CheckReport`). ``w1_T_sem`` is NaN with one seed (a standard error needs two)."""
 
     n_particles: int
     seeds: int
@@ -257,8 +257,9 @@ class CheckReport:
         ]
         for r in self.table:
             free = "" if r.free_w1_T is None else f"{r.free_w1_T:10.4g}"
+            sem = f"{r.w1_T_sem:9.2g}" if math.isfinite(r.w1_T_sem) else f"{'-':>9}"
             lines.append(
-                f"{r.n_particles:7d} {r.seeds:5d} {r.w1_T:10.4g} {r.w1_T_sem:9.2g} "
+                f"{r.n_particles:7d} {r.seeds:5d} {r.w1_T:10.4g} {sem} "
                 f"{r.w1_to_nu:10.4g} {r.w1_max:9.4g} {r.mean_error_T:9.3g} {r.cov_error_T:9.3g} "
                 f"{r.cost:9.5g} [{r.cost_low:9.5g},{r.cost_high:9.5g}] {free}")
         lines.append(f"grid J = {self.grid_cost:.6g} (with the stored control: "
