@@ -64,13 +64,15 @@ def test_exact_snapshots_of_the_flow_cost_nothing() -> None:
 
 def test_linear_quadratic_parameters_are_recovered() -> None:
     # stiffness and strength fitted on the grid from exact Gaussian snapshots of the flow at
-    # θ* = (1, 0.5), from the start (0.7, 0.2): measured errors 7.9e-4 and 1.1e-4 at 160 cells
-    # and 60 steps (the grid's O(h²) error; 2.0e-7 of ΣJ remains at θ̂)
+    # θ* = (1, 0.5), from the start (0.7, 0.2): measured errors 4.9e-4 and 1.8e-5 at 240 cells
+    # and 30 steps (mostly the grid's O(h²) error: 1.34e-3 at 128 cells, 9.1e-4 at 160, 6.4e-4
+    # at 200, all with 30 steps; 160 cells and 60 steps: 7.9e-4, in 1.4x the CPU time, 7.5 s
+    # against 5.5 s interleaved at a load of 10; 1.2e-7 of ΣJ remains at θ̂)
     means, covs = lq_snapshots()
-    problem = SeriesProblem(grid=Grid(-3.5, 1.5, 160),
+    problem = SeriesProblem(grid=Grid(-3.5, 1.5, 240),
                             snapshots=[Snapshot(t, Gaussian(m, c))
                                        for t, m, c in zip(TIMES, means, covs, strict=True)],
-                            noise=SIGMA, steps=60, confinement=Harmonic(0.7),
+                            noise=SIGMA, steps=30, confinement=Harmonic(0.7),
                             interaction=HarmonicInteraction(0.2))
     result = fit_series(problem, [FitParameter("confinement.stiffness", 0.1, 3.0),
                                   FitParameter("interaction.strength", -0.5, 2.0)],
@@ -80,7 +82,7 @@ def test_linear_quadratic_parameters_are_recovered() -> None:
     assert abs(result.estimate["interaction.strength"] - 0.5) < 1e-3
     assert result.cost < 1e-6
     # the Hessian of ΣJ against the closed form's, by central differences of lq_bridge:
-    # measured [[1.70, 0.268], [0.268, 0.270]] on the grid
+    # measured diagonal 1.705 and 0.270 at 240 x 30 ([[1.70, 0.268], [0.268, 0.270]] at 160 x 60)
     assert result.hessian[0, 0] == pytest.approx(1.73, rel=0.05)
     assert result.hessian[1, 1] == pytest.approx(0.27, rel=0.05)
 
