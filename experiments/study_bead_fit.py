@@ -15,7 +15,7 @@ densities instead of the small 0.04 µm kernel, to show the smoothing bias. Writ
 ``bead_fit.md`` and its figures into experiments/out/reports/ (experiments/reports/ with
 --update-committed); the fit folders go to the git-ignored ``experiments/runs/bead_fit/``.
 
-    python experiments/study_bead_fit.py [--update-committed] [--quiet] [--jobs 2]
+    python experiments/study_bead_fit.py [--update-committed] [--quiet] [--jobs 2] [--reuse]
 
 ``--jobs`` is the fits' ``jobs=`` (segments solved at once; the results do not depend on it).
 """
@@ -25,6 +25,7 @@ from __future__ import annotations
 import argparse
 import json
 import shutil
+import sys
 import time
 
 from study_common import FIGURE_DIR, REPORT_DIR, ROOT, Conditions, add_output_flag, mfbridge
@@ -46,9 +47,16 @@ MODELS = {
 SCOTT = [f"endpoints.snapshots.{k}.law.bandwidth=scott" for k in range(3)]
 
 
+REUSE = "--reuse" in sys.argv[1:]
+
+
 def fit(name: str, extra: list[str], params: list[str], more: list[str] = ()) -> tuple[
         dict, float, str]:
     out = RUNS / name
+    if REUSE and (out / "fit.json").is_file():
+        record = json.loads((out / "fit.json").read_text())
+        print(f"{name}: reusing the finished fit in {out.relative_to(ROOT)}", flush=True)
+        return record, record["seconds"], ""
     if (out / "fit.json").is_file():
         shutil.rmtree(out)
     args = ["fit", *BASE, *extra, "-N", N, "--out", str(out.relative_to(ROOT)), *more]
@@ -91,6 +99,10 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     add_output_flag(parser)
     parser.add_argument("--quiet", action="store_true", help="do not echo the fits' output")
+    parser.add_argument("--reuse", action="store_true",
+                        help="keep the fits already finished in experiments/runs/bead_fit/ "
+                             "(resumes a study cut short; they were made by whatever commit "
+                             "was checked out then)")
     parser.add_argument("--jobs", type=int, default=2,
                         help="segments solved at once (the fits' jobs=; default 2)")
     args = parser.parse_args()
@@ -197,7 +209,9 @@ def main() -> None:
         "(`method: histogram`).",
         "",
         f"Run times on 2 cores (other jobs running): {sum(seconds.values()):.0f} s for the three "
-        f"fits with profiles (jobs={args.jobs}). {conditions.sentence()}",
+        f"fits with profiles (jobs={args.jobs}). {conditions.sentence()}"
+        + (" (--reuse: finished fits were kept; the date, commit and load are this report's, "
+           "the times the fits' own.)" if REUSE else ""),
     ]
     REPORT.write_text("\n".join(lines) + "\n")
     print(REPORT.read_text())
