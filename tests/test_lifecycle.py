@@ -36,7 +36,8 @@ SMALL = ("grid.shape=32", "steps=8", "figures=false")
 # steps, estimated cell Péclet number 11, which run to max_iter without converging instead)
 DIVERGING = ("grid.shape=48", "steps=8", "figures=false", "interaction=morse",
              "interaction.depth=50", "endpoints=gaussians", "solver.route=operator",
-             "solver.continuation=0", "solver.noise_continuation=0", "solver.kernel=chain")
+             "solver.continuation=0", "solver.noise_continuation=0", "solver.kernel=chain",
+             "solver.cross_check=off")
 
 
 @pytest.fixture(scope="module")

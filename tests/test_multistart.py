@@ -56,10 +56,16 @@ def test_swarm_passes_the_obstacle_on_either_side(tmp_path):
     # after ~365 outer iterations each, 98 s for the whole solve), the mean at T/2 is
     # (0.914, +-1.176), J = 8.8854270 for both (relative gap 1.2e-10); the flows are disjoint
     # (max L1 distance 2.0) and equal to each other's mirror image to a max L1 distance of
-    # 7.9e-10. The cold start diverges (the symmetric guess passes through the obstacle);
-    # continuations are switched off to keep this short.
+    # 7.9e-10. The cold start diverges (the symmetric guess passes through the obstacle), and
+    # so does the displacement start (straight through it as well); continuations are switched
+    # off to keep this short. Re-measured with J at the step midpoints and outer=auto (Anderson
+    # going on far out, as no continuation follows; then Newton-Krylov): J = 7.2265708 for
+    # both, 141 outer iterations for the returned one, 226 s for the solve at load ~8.
+    # (With outer=auto ending far-out starts early, as on dec62ac, no bridge was found.) The
+    # direct solver's cross-check is off: this is about the fixed point's own starts.
     problem = swarm_around_obstacle()
-    options = SolverOptions(starts=3, max_iter=800, noise_continuation=0, continuation=0)
+    options = SolverOptions(starts=4, max_iter=800, noise_continuation=0, continuation=0,
+                            cross_check="off")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         result = solve_bridge(problem, options)
@@ -102,7 +108,8 @@ def test_convex_case_has_one_bridge():
         warnings.simplefilter("error", MultipleBridgesWarning)
         result = solve_bridge(problem, SolverOptions(starts=3))
     assert result.converged and result.alternatives == []
-    assert "3 starts (cold: converged, tilt+x0: converged, tilt-x0: converged)" in result.message
+    assert ("3 starts (cold: converged, displacement: converged, tilt+x0: converged)"
+            in result.message)
     assert multistart.flow_distance(result.masses, single.masses) < 1e-8
     for label, guess in multistart.tilted_flows(problem, 2):
         moved = float(((guess - single.masses)[problem.steps // 2] * problem.grid.axes[0]).sum())

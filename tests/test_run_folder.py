@@ -443,7 +443,7 @@ def test_console_script_bad_value_is_a_clean_error(console: dict[str, Console]) 
 def test_non_convergence_is_never_silent(tmp_path: Path,
                                         tiny_overrides: tuple[str, ...]) -> None:
     cfg = compose([*tiny_overrides, "solver.max_iter=1", "solver.continuation=0",
-                   "solver.noise_continuation=0"])
+                   "solver.noise_continuation=0", "solver.cross_check=off"])
     with pytest.warns(ConvergenceWarning, match="last residual") as record:
         result = mfbridge.solve(cfg)
     assert result.status == "not_converged"

@@ -295,7 +295,7 @@ def test_nearest_run_skips_incompatible_and_unfinished_runs(tmp_path: Path) -> N
         "steps": ["interaction.strength=1", "steps=4"],
         "kind": ["interaction=harmonic", "interaction.strength=1"],
         "method": ["interaction.strength=1", "solver=frozen"],
-        "stopped": ["interaction.strength=1", "solver.max_iter=2"],
+        "stopped": ["interaction.strength=1", "solver.max_iter=2", "solver.cross_check=off"],
         "killed": ["interaction.strength=1"],
     }.items():
         if name == "stopped":

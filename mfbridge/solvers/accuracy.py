@@ -359,6 +359,10 @@ def solve_with_estimate(problem: BridgeProblem, solve: Solve,
             result.error = estimate_error(problem, result, solve, options.companions,
                                           time_limit=_companion_time(solve_seconds))
             result.timings["estimate"] = result.error.seconds
+            if not math.isfinite(result.error.cost_error):
+                # converged, but with no error bar: say so where the status is read
+                result.message += (f"; no discretisation-error estimate: "
+                                   f"{result.error.note or 'no companion grid'}")
         notes += advise_after(problem, result)
     result.advice = notes
     return result
@@ -390,15 +394,22 @@ def fixed_point_solve(options: SolverOptions | None = None,
     start, no coupling, the operator route when the route is ``auto``, the tolerance
     ``max(tol, COMPANION_TOL)`` and the estimate's time watch as callback."""
     options = options or SolverOptions()
+    # a companion is solved by the solver its start came from: a result of the direct solver
+    # (the fixed point's fallback, mfbridge.solvers.cross_check) has direct companions, and a
+    # fixed-point companion never switches solver (the estimate compares one discretisation)
     companion_options = dataclasses.replace(
         options, starts=1, coupling=False, tol=max(options.tol, COMPANION_TOL),
-        route="operator" if options.route == "auto" else options.route)
+        route="operator" if options.route == "auto" else options.route, cross_check="off")
 
     def solve(pr: BridgeProblem, warm: BridgeResult | None,
               companion: Callable[[Any], None] | None) -> BridgeResult:
         if companion is None:
             own = warm_start if warm is None and pr is problem else warm
             return solve_bridge(pr, options, callback, warm_start=own)
+        if warm is not None and warm.method == "direct":
+            from mfbridge.solvers.direct import solve_direct
+
+            return solve_direct(pr, None, lambda *args: companion(args))
         return solve_bridge(pr, companion_options, companion, warm_start=warm)
 
     return solve

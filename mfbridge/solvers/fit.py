@@ -38,7 +38,7 @@ import time
 import warnings
 from collections.abc import Callable, Sequence
 from concurrent.futures import Executor
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -308,12 +308,15 @@ class _Evaluator:
     def solve(self, theta: np.ndarray) -> SeriesResult:
         values = dict(zip(self.names, map(float, theta), strict=True))
         problem = with_parameters(self.problem, values)
+        # the envelope gradient needs the fixed point's own potentials: no direct-solver
+        # fallback (mfbridge.solvers.cross_check), a failed evaluation stays failed
+        solver = replace(self.options.solver, cross_check="off")
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ConvergenceWarning)
-            result = solve_series(problem, self.options.solver, warm_start=self.last,
+            result = solve_series(problem, solver, warm_start=self.last,
                                   executor=self.executor)
             if result.status != "converged" and self.last is not None:
-                result = solve_series(problem, self.options.solver, executor=self.executor)
+                result = solve_series(problem, solver, executor=self.executor)
         return result
 
     def __call__(self, theta: np.ndarray, kind: str) -> Evaluation:

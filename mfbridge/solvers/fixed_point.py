@@ -57,7 +57,7 @@ from mfbridge.numerics.reference import (
     faces,
 )
 from mfbridge.result import BridgeResult
-from mfbridge.solvers import multistart, preflight, sanity, small_noise
+from mfbridge.solvers import cross_check, multistart, preflight, sanity, small_noise
 from mfbridge.solvers.cost import bridge_cost
 from mfbridge.solvers.options import COUPLING_MAX_CELLS, SolverOptions
 from mfbridge.solvers.outer_loop import Iteration, Outcome, Run, Start, iterate
@@ -198,13 +198,23 @@ def solve_bridge(
 
     If the iteration from the given start fails and ``options.continuation`` is positive, the
     interaction is switched on gradually, W → (j/m) W for j = 1..m, each solve starting from the
-    previous one.
+    previous one. If it still fails, or converged only with effort, ``options.cross_check``
+    brings in the direct solver (:mod:`mfbridge.solvers.cross_check`): its result is returned
+    (``method = "direct"``) when the fixed point failed and it converged.
     """
     options = options or SolverOptions()
     if warm_start is not None:
         _check_warm_start(problem, warm_start)
+    t0 = time.perf_counter()
+    second = cross_check.applies(problem, options)
+    reserve = cross_check.reserve(options.time_budget) if second else 0.0
     with threadpool_limits(limits=1):
-        return _solve(problem, options, callback, warm_start)
+        result = _solve(problem, options, callback, warm_start, reserve)
+    if second:
+        left = (None if options.time_budget is None
+                else options.time_budget - (time.perf_counter() - t0))
+        result = cross_check.second_opinion(problem, result, options.cross_check, left)
+    return result
 
 
 def _check_warm_start(problem: BridgeProblem, warm: BridgeResult) -> None:
@@ -291,7 +301,9 @@ def _cold_start(problem: BridgeProblem) -> Start:
 
 def _solve(problem: BridgeProblem, options: SolverOptions,
            callback: Callable[[Iteration], None] | None,
-           warm_start: BridgeResult | None) -> BridgeResult:
+           warm_start: BridgeResult | None, reserve: float = 0.0) -> BridgeResult:
+    """The fixed-point solve; ``reserve``: seconds of the time budget kept for the direct
+    solver's fallback (:func:`mfbridge.solvers.cross_check.reserve`)."""
     start_time = time.perf_counter()
     grid = problem.grid
     route = options.route
@@ -316,7 +328,11 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
     scaled = _Bridge(problem)
     preflight.check_scales(problem, start.p_bar, scaled.pair, scaled.confinement, kernel)
     preflight.check_resolution(problem)
-    run = Run(options, route, Clock(options.time_budget), callback)
+    run = Run(options, route, Clock(None if options.time_budget is None
+                                    else options.time_budget - reserve), callback)
+    # an attempt that stalls far out ends early only if a continuation can take over
+    run.give_up_far = options.noise_continuation > 0 or (options.continuation > 0
+                                                         and not scaled.pair.is_zero)
     outcome = _attempt(problem, 1.0, run, start)
     # the answer must be for the problem as given: a continuation that stops early holds a flow
     # for a larger noise or a weaker interaction, which is never returned
@@ -351,8 +367,10 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
                         f"{m} (W × {j / m:.3g}: {outcome.status.replace('_', ' ')}, residual "
                         f"{outcome.residual:.2e})")
     if outcome.budget_spent:
-        stopped += (f"; the time budget of {options.time_budget:g} s ran out (solver.time_budget)"
-                    f" during {run.stage or 'the first attempt'}")
+        kept = (f", {reserve:.3g} s of it kept for the direct solver's fallback"
+                if reserve > 0 else "")
+        stopped += (f"; the time budget of {options.time_budget:g} s ran out (solver.time_budget"
+                    f"{kept}) during {run.stage or 'the first attempt'}")
     outcome = answer
     note += stopped
     history = run.history
@@ -490,12 +508,14 @@ def _describe(obj: object) -> dict[str, object]:
 
 
 def _other_starts(problem: BridgeProblem, run: Run, first: BridgeResult) -> BridgeResult:
-    """Run the outer loop from ``options.starts - 1`` tilted guesses (no continuation: a guess
+    """Run the outer loop from ``options.starts - 1`` further guesses
+    (:func:`mfbridge.solvers.multistart.starting_flows`; no continuation: a guess
     that fails is reported as such; none after the time budget is spent) and return
     :func:`mfbridge.solvers.multistart.gather` of all."""
     options = run.options
     found = [first]
-    for label, p_bar in multistart.tilted_flows(problem, options.starts - 1):
+    run.give_up_far = False  # no continuation follows a further start
+    for label, p_bar in multistart.starting_flows(problem, options.starts - 1):
         if run.clock.spent:
             first.message += f"; start {label} and later ones skipped: time budget spent"
             break

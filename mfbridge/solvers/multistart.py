@@ -3,7 +3,20 @@ r"""Several initial guesses for the outer loop, and which of the bridges they re
 With a strong attraction and a non-convex confinement the rate function J can have several
 critical points, and the outer fixed-point loop (:mod:`mfbridge.solvers.fixed_point`) converges
 to the one whose basin holds its start. Solver option ``starts = m`` runs the usual start (cold or
-warm) and ``m - 1`` *tilted* guesses, and reports every distinct converged bridge.
+warm) and ``m - 1`` further guesses (:func:`starting_flows`): first McCann's displacement
+interpolation, then *tilted* guesses; it reports every distinct converged bridge.
+
+Displacement start
+------------------
+The cold start moves mass by fading one endpoint into the other; the displacement interpolation
+(the bridge's small-noise limit: Carlier, Duval, Peyré & Schmitzer, SIAM J. Math. Anal. 2017)
+moves it along straight lines, so with endpoints made of several clusters it keeps the clusters
+apart. Under strong attraction this reaches a bridge the cold and tilted starts miss: Gaussian
+core of strength -10, range 0.5, σ = 1, demo endpoints, 64 cells × 20 steps, the cold start and
+both level-1 tilts converge to J = 4.6697831 and the displacement start to J = 4.1042056 (39
+outer iterations; flows 1.41 apart in max L1). It is the direct solver's warm start
+(:func:`mfbridge.solvers.direct.displacement_interpolation`), blended with
+:data:`DISPLACEMENT_BLEND` of the linear interpolation in the same way.
 
 Tilted guesses
 --------------
@@ -42,10 +55,11 @@ import warnings
 
 import numpy as np
 
-from mfbridge.errors import MultipleBridgesWarning
+from mfbridge.errors import InputError, MultipleBridgesWarning
 from mfbridge.model.problem import BridgeProblem
 from mfbridge.numerics import observables
 from mfbridge.result import Alternative, BridgeResult
+from mfbridge.solvers.direct import displacement_interpolation
 
 # Flows closer than this (max over time of the L1 distance of the masses) are one bridge; with
 # tol = 1e-9 the same fixed point reached from the cold start and from tilted guesses differed by
@@ -54,6 +68,10 @@ SAME_BRIDGE_L1 = 1e-3
 # the threshold grows with a looser outer tolerance: 1e3 x tol
 SAME_BRIDGE_TOL_FACTOR = 1e3
 TILT = 2.0  # endpoint widths the level-1 guess moves at T/2
+# share of the linear interpolation in the displacement start (as in the direct solver's warm
+# start, mfbridge.solvers.direct; the outer loop needs no positivity, it only keeps the guess
+# from being exactly the interpolation's piecewise-constant quantile profile)
+DISPLACEMENT_BLEND = 1e-3
 
 
 def same_bridge_threshold(tol: float) -> float:
@@ -101,15 +119,41 @@ def tilted_flows(problem: BridgeProblem, count: int) -> list[tuple[str, np.ndarr
     return out
 
 
+def displacement_flow(problem: BridgeProblem) -> np.ndarray | None:
+    """The displacement start: masses (K+1, *grid.shape), ``(1 - b) D + b L`` with D McCann's
+    displacement interpolation, L the linear one and b = :data:`DISPLACEMENT_BLEND`; ``None``
+    when the exact plan it needs is too large (2D/3D grids above
+    :data:`mfbridge.solvers.direct.OT_MAX_CELLS` cells)."""
+    try:
+        flow = displacement_interpolation(problem)
+    except InputError:
+        return None
+    return (1 - DISPLACEMENT_BLEND) * flow + DISPLACEMENT_BLEND * problem.linear_flow()
+
+
+def starting_flows(problem: BridgeProblem, count: int) -> list[tuple[str, np.ndarray]]:
+    """The ``count`` guesses after the usual start (label, masses of shape (K+1, *shape)): the
+    displacement start (label ``"displacement"``), then :func:`tilted_flows` (all tilted when
+    the displacement start is not available)."""
+    if count <= 0:
+        return []
+    flow = displacement_flow(problem)
+    if flow is None:
+        return tilted_flows(problem, count)
+    return [("displacement", flow), *tilted_flows(problem, count - 1)]
+
+
 def gather(found: list[BridgeResult], tol: float) -> BridgeResult:
     """The cheapest converged bridge among ``found`` (one result per start, the first the usual
     start), carrying the other distinct converged bridges as ``alternatives``, cheapest first.
 
-    If none converged the first is returned unchanged. A :class:`MultipleBridgesWarning`
-    names the costs when more than one distinct bridge is found.
+    If none converged the first is returned, its message naming the starts tried. A
+    :class:`MultipleBridgesWarning` names the costs when more than one distinct bridge is found.
     """
     converged = sorted((r for r in found if r.converged), key=lambda r: r.cost)
+    tried = ", ".join(f"{r.start}: {r.status.replace('_', ' ')}" for r in found)
     if not converged:
+        found[0].message += f" [{len(found)} starts ({tried}); none converged]"
         return found[0]
     limit = same_bridge_threshold(tol)
     kept: list[BridgeResult] = []
@@ -123,7 +167,6 @@ def gather(found: list[BridgeResult], tol: float) -> BridgeResult:
                     density=r.density)
         for r in others
     ]
-    tried = ", ".join(f"{r.start}: {r.status.replace('_', ' ')}" for r in found)
     best.message += f" [{len(found)} starts ({tried}); {len(kept)} distinct bridge(s)]"
     if others:
         costs = "; ".join(f"J = {r.cost:.8g} from start {r.start}"

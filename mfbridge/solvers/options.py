@@ -16,6 +16,7 @@ PROPAGATIONS = ("auto", "rational", "log")
 COUPLING_MAX_CELLS = 4096
 ROUTES = ("auto", "operator", "dense")
 OUTER_METHODS = ("auto", "anderson", "newton")
+CROSS_CHECKS = ("auto", "always", "off")  # mfbridge.solvers.cross_check.MODES
 # seconds: long enough for every documented run (3D 32^3 x 100 steps: 53 s), short enough that a
 # run that cannot converge answers within minutes
 DEFAULT_TIME_BUDGET = 600.0
@@ -62,7 +63,13 @@ class SolverOptions:
       bridge is returned, the other distinct ones are in ``result.alternatives`` and a
       :class:`~mfbridge.errors.MultipleBridgesWarning` names their costs (1: one start);
     * ``kernel``: the reference's steps: ``"chain"`` (Scharfetter–Gummel), ``"gaussian"`` (the
-      split heat kernel, for small noise), ``"auto"`` (:mod:`mfbridge.solvers.small_noise`).
+      split heat kernel, for small noise), ``"auto"`` (:mod:`mfbridge.solvers.small_noise`);
+    * ``cross_check``: the direct solver (χ = ρ) as a second opinion
+      (:mod:`mfbridge.solvers.cross_check`; with ``outer = "auto"``, the optimal method, an
+      interaction, in 1D and 2D): ``"auto"`` (its result is returned when the fixed point does
+      not converge; a converged solve that needed Newton–Krylov steps or a continuation, or
+      found several bridges, is compared with it and called ``"suspect"`` if the direct flow is
+      cheaper), ``"always"`` (compare after every converged solve) or ``"off"``.
     """
 
     method: str = "optimal"
@@ -82,6 +89,7 @@ class SolverOptions:
     kernel: str = "auto"
     outer: str = "auto"
     time_budget: float | None = DEFAULT_TIME_BUDGET
+    cross_check: str = "auto"
 
     def __post_init__(self) -> None:
         if self.method not in METHODS:
@@ -94,6 +102,8 @@ class SolverOptions:
             raise unknown_name("propagation", self.propagation, PROPAGATIONS)
         if self.outer not in OUTER_METHODS:
             raise unknown_name("outer method", self.outer, OUTER_METHODS)
+        if self.cross_check not in CROSS_CHECKS:
+            raise unknown_name("cross_check", self.cross_check, CROSS_CHECKS)
         checks = [
             ("tol", self.tol > 0),
             ("sinkhorn_tol", self.sinkhorn_tol > 0),

@@ -25,7 +25,11 @@ in 185 iterations at -8 and stagnated (residual ~5e-4, σ = 0.8, 256 × 100) at 
   factor :data:`SLOW_FACTOR` gained over :data:`SLOW_WINDOW` iterations, or a residual rising
   :data:`DIVERGENCE_FACTOR`-fold), provided the best residual is at most :data:`NEWTON_FROM`;
   from farther out the attempt ends ``"not_converged"`` and the solver's continuations (in
-  the noise, in the interaction strength) start instead.
+  the noise, in the interaction strength) start instead. When no continuation follows
+  (:attr:`Run.give_up_far` false: the further starts of ``solver.starts``, or both
+  continuations switched off) Anderson goes on instead: the tilted starts of the swarm passing an
+  obstacle (tests/test_multistart.py) stay above residual 1 for ~300 iterations and converge
+  after 385; ending them early lost that bridge.
 
 Every evaluation ticks the run's :class:`~mfbridge.numerics.clock.Clock`; when the time budget
 is spent the iteration returns its best iterate with status ``"not_converged"``. Progress goes
@@ -188,6 +192,9 @@ class Run:
     callback: Callable[[Iteration], None] | None = None
     history: list[dict[str, float]] = field(default_factory=list)
     stage: str = ""
+    # "auto": end an attempt that stalls far from any fixed point ("far"), so that a
+    # continuation can try; false when none follows (Anderson then goes on to max_iter)
+    give_up_far: bool = True
 
     def record(self, kind: str, point: _Point, seconds: float, sinkhorn: int,
                products: int = 0, trials: int = 0) -> None:
@@ -408,7 +415,7 @@ def _anderson(g: _Map, run: Run, start: Start, state: _State) -> str:
         bests.append(best)
         stalled = len(bests) > STALL_WINDOW and bests[-1] == bests[-1 - STALL_WINDOW]
         slow = len(bests) > SLOW_WINDOW and bests[-1] > SLOW_FACTOR * bests[-1 - SLOW_WINDOW]
-        if auto and (stalled or slow):
+        if auto and (stalled or slow) and (best <= NEWTON_FROM or run.give_up_far):
             # near a fixed point Newton-Krylov takes over; far from any, this start is hopeless
             # and the caller's continuation (noise, interaction strength) should try instead
             return "stalled_anderson" if best <= NEWTON_FROM else "far"
