@@ -148,6 +148,35 @@ def test_mixed_laws_and_fitted_box(tmp_path: Path) -> None:
     assert problem.snapshots[1].law.sum() == pytest.approx(1.0)
 
 
+def test_fitted_grid_holds_every_snapshot() -> None:
+    # `endpoints=series grid=fitted` (before: InterpolationKeyError 'endpoints.initial', exit 1):
+    # the box holds every snapshot's Gaussian components to 5 standard deviations (5.7e-7 of
+    # the mass beyond; a normal table, common practice) and the cells resolve the narrowest
+    # component with 8 cells per standard deviation (model.fitted_grid); the CLI resolves the
+    # whole config first (OmegaConf.to_container), as here
+    from omegaconf import OmegaConf
+
+    cfg = compose(["endpoints=series", "grid=fitted", "steps=16", "figures=false"])
+    OmegaConf.to_container(cfg, resolve=True)
+    problem = mfbridge.build_problem(cfg)
+    assert isinstance(problem, SeriesProblem)
+    grid = problem.grid
+    widths = []
+    for item in cfg.endpoints.snapshots:
+        law = item.law
+        means = law.get("means", [law.get("mean")])
+        sds = np.sqrt(law.get("covs", [law.get("cov")]))
+        widths.extend(sds)
+        for mean, sd in zip(means, sds, strict=True):
+            assert grid.lower[0] < mean - 5 * sd and mean + 5 * sd < grid.upper[0]
+    assert grid.spacing[0] <= min(widths) / 8 * (1 + 1e-12)
+    # a snapshot far to the right widens the box (the last snapshot is read, not only the
+    # first two)
+    wide = mfbridge.build_problem(compose(["endpoints=series", "grid=fitted", "steps=16",
+                                           "endpoints.snapshots.2.law.mean=3.0"]))
+    assert wide.grid.upper[0] > 3.0 + 5 * np.sqrt(0.5) > grid.upper[0]
+
+
 def _gaussians(*times: float) -> list[Snapshot]:
     return [Snapshot(t, Gaussian(0.0, 0.3)) for t in times]
 

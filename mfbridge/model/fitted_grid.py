@@ -109,15 +109,26 @@ def _endpoint_reach(laws: Sequence[Endpoint], spreads: float = ENDPOINT_REACH
     return np.min(lows, axis=0), np.max(highs, axis=0)
 
 
-def fitted_grid(initial: Endpoint, final: Endpoint, confinement: Confinement | None = None,
-                noise: Any = None, diffusion: Any = None, shape: Any = None,
-                margin: float = 0.1, cells_per_width: float | None = None) -> Grid:
+def _snapshot_laws(snapshots: Any) -> list[Any]:
+    """The law of each item of a series (a mapping or an object with a ``law``)."""
+    return [item["law"] if hasattr(item, "keys") else getattr(item, "law", item)
+            for item in snapshots]
+
+
+def fitted_grid(initial: Endpoint | None = None, final: Endpoint | None = None,
+                confinement: Confinement | None = None, noise: Any = None,
+                diffusion: Any = None, shape: Any = None, margin: float = 0.1,
+                cells_per_width: float | None = None, snapshots: Any = None) -> Grid:
     """A :class:`Grid` whose box holds the endpoints and the confinement's wells (module
     docstring); ``shape``: cells per axis, or None to choose them from the endpoints' widths
-    and the drift; ``noise`` σ (length/√time) or ``diffusion`` D (σ = √(2D))."""
-    if not isinstance(initial, Endpoint) or not isinstance(final, Endpoint):
-        raise InputError("the fitted grid needs endpoint objects (grid=fitted); with arrays of "
-                         "masses give the grid yourself")
+    and the drift; ``noise`` σ (length/√time) or ``diffusion`` D (σ = √(2D)). For a series,
+    ``snapshots`` (items with a ``law``) instead of ``initial`` and ``final``: the box holds
+    every snapshot's law and the cells resolve the narrowest."""
+    laws = _snapshot_laws(snapshots) if snapshots is not None else [initial, final]
+    if len(laws) < 2 or not all(isinstance(e, Endpoint) for e in laws):
+        raise InputError("the fitted grid needs endpoint objects (grid=fitted): initial and "
+                         "final, or the laws of a series' snapshots; with arrays of masses give "
+                         "the grid yourself")
     if not (is_real_number(margin) and margin >= 0):
         raise InputError(f"margin must be a number ≥ 0, got {margin!r}")
     if cells_per_width is not None and not (is_real_number(cells_per_width)
@@ -125,7 +136,7 @@ def fitted_grid(initial: Endpoint, final: Endpoint, confinement: Confinement | N
         raise InputError(f"cells_per_width must be a positive number or null, got "
                          f"{cells_per_width!r}")
     sigma = checked_noise(noise, diffusion)
-    lower, upper = _endpoint_reach([initial, final])
+    lower, upper = _endpoint_reach(laws)
     dim = len(lower)
     reach = confinement_reach(confinement, sigma, dim)
     if reach is not None:
@@ -134,7 +145,7 @@ def fitted_grid(initial: Endpoint, final: Endpoint, confinement: Confinement | N
     lower, upper = lower - margin * extent, upper + margin * extent
     if shape is not None:
         return Grid(tuple(map(float, lower)), tuple(map(float, upper)), shape)
-    parts = [c for e in (initial, final) for c in _parts(e)]
+    parts = [c for e in laws for c in _parts(e)]
     widths, lows, highs = [], [], []
     for e in parts:
         kernel = getattr(e, "kernel_cov", None)
