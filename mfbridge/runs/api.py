@@ -14,6 +14,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import time
 import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
@@ -39,7 +40,13 @@ from mfbridge.result import (
     dataset_summary,
     read_marker,
 )
-from mfbridge.solvers.accuracy import AccuracyOptions, fixed_point_solve, solve_with_estimate
+from mfbridge.solvers.accuracy import (
+    AccuracyOptions,
+    fixed_point_solve,
+    say_if_missing,
+    series_estimate,
+    solve_with_estimate,
+)
 from mfbridge.solvers.fixed_point import Iteration, SolverOptions
 from mfbridge.solvers.series import SeriesResult, solve_series
 
@@ -292,12 +299,29 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
         bridges = problem.segments() if isinstance(problem, SeriesProblem) else [problem]
         if any(choose_kernel(b, "auto")[0] == "gaussian" for b in bridges):
             _check_memory(cfg, problem.grid, options, kernel="gaussian")
+    # runs recorded before the estimate existed have no accuracy group: solve them as they were
+    accuracy = (_build(cfg, "accuracy") if "accuracy" in cfg
+                else AccuracyOptions(estimate=False))
+    if not isinstance(accuracy, AccuracyOptions):
+        raise InputError("the accuracy group must build a "
+                         "mfbridge.solvers.accuracy.AccuracyOptions")
     if isinstance(problem, SeriesProblem):
         if not isinstance(options, SolverOptions):
             raise InputError("a series of snapshots is solved by the fixed-point solver "
                              "(solver=optimal or solver=frozen)")
+        if accuracy.target is not None:
+            raise InputError(f"accuracy.target={accuracy.target:g} (refining until a target "
+                             "accuracy is met) is not available for a series of snapshots: "
+                             "give accuracy.target=null and choose grid.shape and steps (the "
+                             "error estimate of the result tells how far J is from converged)")
+        cpu = time.process_time()
         result = solve_series_jobs(problem, options, warm_start, segment_callback,
                                    cfg.get("jobs", 1)).joined()
+        if accuracy.estimate:
+            result.error = series_estimate(problem, result, options, accuracy,
+                                           time.process_time() - cpu)
+            result.timings["estimate"] = result.error.seconds
+            say_if_missing(result)
         result.config = OmegaConf.to_container(cfg, resolve=True)
         result.stopping = {"quantity": "self-consistency residual and marginal error of every "
                                        "segment (both below tol)",
@@ -306,12 +330,6 @@ def solve(cfg: Any, callback: Callable[[Iteration], None] | None = None,
         if axes is not None:
             result.model["axes"] = axes
         return result
-    # runs recorded before the estimate existed have no accuracy group: solve them as they were
-    accuracy = (_build(cfg, "accuracy") if "accuracy" in cfg
-                else AccuracyOptions(estimate=False))
-    if not isinstance(accuracy, AccuracyOptions):
-        raise InputError("the accuracy group must build a "
-                         "mfbridge.solvers.accuracy.AccuracyOptions")
     if type(options).__name__ == "DirectOptions":
         from mfbridge.solvers.direct import DirectOptions, solve_direct
 

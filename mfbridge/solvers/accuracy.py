@@ -44,9 +44,11 @@ from mfbridge.errors import GridWarning, InputError, MFBridgeError, TargetNotMet
 from mfbridge.model.endpoints import box_text
 from mfbridge.model.grid import Grid
 from mfbridge.model.problem import BridgeProblem
+from mfbridge.model.series import SeriesProblem, Snapshot
 from mfbridge.result import BridgeResult, ErrorEstimate
 from mfbridge.solvers import advice
 from mfbridge.solvers.fixed_point import Iteration, SolverOptions, solve_bridge
+from mfbridge.solvers.series import join, split_joined
 
 ORDER = 2.0  # the scheme's order in h and in Δt
 RATIO = 2  # companions are coarser by this factor in cells per axis and in steps
@@ -144,6 +146,47 @@ def effective_ratio(fine: BridgeProblem, coarse: BridgeProblem) -> float:
     return float(np.mean(ratios))
 
 
+def series_coarser(problem: SeriesProblem, factor: int = RATIO) -> SeriesProblem | None:
+    """The series on the same box with ``factor`` times fewer cells per axis and steps
+    (rounded), the snapshots' masses moved to the new cells (:meth:`~mfbridge.model.grid.Grid.
+    remap`); None when a segment would get fewer than ``MIN_COMPANION_STEPS`` steps or an axis
+    fewer than ``MIN_COMPANION_CELLS`` cells."""
+    grid = problem.grid
+    shape = tuple(max(1, round(n / factor)) for n in grid.shape)
+    steps = max(1, round(problem.steps / factor))
+    if min(shape) < MIN_COMPANION_CELLS or steps < MIN_COMPANION_STEPS * len(problem.segments()):
+        return None
+    target = Grid(grid.lower, grid.upper, shape)
+    coarse = dataclasses.replace(
+        problem, grid=target, steps=steps,
+        snapshots=tuple(Snapshot(s.time, grid.remap(s.law, target)) for s in problem.snapshots))
+    return coarse if min(coarse.steps_per_segment) >= MIN_COMPANION_STEPS else None
+
+
+def series_solve(solve: Solve) -> Solve:
+    """The :data:`Solve` of a series from the :data:`Solve` of one bridge: the segments one
+    after the other in this process (each from its own part of the warm start, a list of
+    segment results), joined (:func:`~mfbridge.solvers.series.join`)."""
+
+    def run(problem: Any, warm: Any, companion: Callable[[Any], None] | None) -> BridgeResult:
+        parts = problem.segments()
+        starts = warm if warm is not None else [None] * len(parts)
+        return join(problem.times, [solve(p, w, companion)
+                                    for p, w in zip(parts, starts, strict=True)])
+
+    return run
+
+
+def _warm(result: BridgeResult, problem: BridgeProblem | SeriesProblem
+          ) -> BridgeResult | list[BridgeResult]:
+    """:func:`transfer` of ``result`` to ``problem``; for a series, segment by segment."""
+    if isinstance(problem, SeriesProblem):
+        parts = split_joined(result) if result.segments else [
+            dataclasses.replace(result, times=result.times - result.times[0])]
+        return [transfer(r, p) for r, p in zip(parts, problem.segments(), strict=True)]
+    return transfer(result, problem)
+
+
 def _at_times(values: np.ndarray, times: np.ndarray, new_times: np.ndarray) -> np.ndarray:
     """Slices of ``values`` (leading axis over ``times``) at ``new_times``: the slice itself
     where a node coincides, linear interpolation in time otherwise."""
@@ -238,14 +281,16 @@ def combine(fine: BridgeResult, companions: list[BridgeResult], ratio: float,
     )
 
 
-def estimate_error(problem: BridgeProblem, fine: BridgeResult, solve: Solve,
+def estimate_error(problem: BridgeProblem | SeriesProblem, fine: BridgeResult, solve: Solve,
                    companions: int = 2, time_limit: float | None = None) -> ErrorEstimate:
     """Solve ``problem`` on ``companions`` coarser grids (each coarser by ``RATIO`` than the
     previous, started from the finer solution) and estimate the discretisation error of
     ``fine`` (its solution on ``problem.grid``). A companion that cannot be set up (too few
     cells), raises an error, does not converge, or runs beyond ``time_limit`` CPU seconds (all
     companions together) ends the ladder there; with none left the estimate is NaN and its note
-    says why."""
+    says why. A series of snapshots (``fine`` its joined result, ``solve`` e.g.
+    :func:`series_solve`) is treated as one problem: its companions are the series on the
+    coarser grids (:func:`series_coarser`), and J is the sum over the segments."""
     start = time.perf_counter()
     deadline = math.inf if time_limit is None else time.process_time() + time_limit
 
@@ -259,7 +304,7 @@ def estimate_error(problem: BridgeProblem, fine: BridgeResult, solve: Solve,
     current, previous = problem, fine
     ratio = float(RATIO)
     for _ in range(companions):
-        nxt = coarser(current)
+        nxt = series_coarser(current) if isinstance(current, SeriesProblem) else coarser(current)
         label = "" if nxt is None else f"{_shape_text(nxt)}"
         if nxt is None:
             note = f"a grid coarser than {_shape_text(current)} would be too small"
@@ -268,7 +313,7 @@ def estimate_error(problem: BridgeProblem, fine: BridgeResult, solve: Solve,
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")
-                res = solve(nxt, transfer(previous, nxt), watch)
+                res = solve(nxt, _warm(previous, nxt), watch)
         except OverTime as exc:
             note = f"the companion on {label} stopped: {exc}"
             break
@@ -283,7 +328,9 @@ def estimate_error(problem: BridgeProblem, fine: BridgeResult, solve: Solve,
             note = f"the companion on {label} ended {res.status.replace('_', ' ')}"
             break
         if not results:
-            ratio = effective_ratio(current, nxt)
+            ratio = (effective_ratio(current.segment(0), nxt.segment(0))
+                     if isinstance(current, SeriesProblem) and isinstance(nxt, SeriesProblem)
+                     else effective_ratio(current, nxt))
         results.append(res)
         current, previous = nxt, res
     elapsed = time.perf_counter() - start
@@ -359,13 +406,33 @@ def solve_with_estimate(problem: BridgeProblem, solve: Solve,
             result.error = estimate_error(problem, result, solve, options.companions,
                                           time_limit=_companion_time(solve_seconds))
             result.timings["estimate"] = result.error.seconds
-            if not math.isfinite(result.error.cost_error):
-                # converged, but with no error bar: say so where the status is read
-                result.message += (f"; no discretisation-error estimate: "
-                                   f"{result.error.note or 'no companion grid'}")
+            say_if_missing(result)
         notes += advise_after(problem, result)
     result.advice = notes
     return result
+
+
+def series_estimate(problem: SeriesProblem, result: BridgeResult, options: SolverOptions,
+                    accuracy: AccuracyOptions, solve_seconds: float) -> ErrorEstimate:
+    """The error estimate of the joined ``result`` of a series (:func:`estimate_error` with the
+    segments solved one after the other, :func:`series_solve`, under the companion options of
+    :func:`fixed_point_solve`): J is the sum over the segments, the density flow and the mean
+    path are compared over the whole span. ``solve_seconds``: the CPU time of the series'
+    solve (the segments' own times when they ran in other processes), which sets the
+    companions' time limit."""
+    if result.status not in ESTIMATED:
+        return unavailable(f"the solve ended {result.status.replace('_', ' ')}")
+    spent = max(solve_seconds, float(result.timings.get("total", 0.0)))
+    return estimate_error(problem, result, series_solve(fixed_point_solve(options)),
+                          accuracy.companions, time_limit=_companion_time(spent))
+
+
+def say_if_missing(result: BridgeResult) -> None:
+    """A result estimated without numbers (no companion could be solved) says so in its
+    message, where the status is read."""
+    if result.error is not None and not math.isfinite(result.error.cost_error):
+        result.message += (f"; no discretisation-error estimate: "
+                           f"{result.error.note or 'no companion grid'}")
 
 
 def advise_before(problem: BridgeProblem) -> list[str]:
