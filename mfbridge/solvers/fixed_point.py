@@ -227,7 +227,9 @@ def _check_warm_start(problem: BridgeProblem, warm: BridgeResult) -> None:
         )
 
 
-_LOG_NOTE = " (log-domain propagation: the endpoints span more than double precision)"
+# in the message of a result whose chain steps ran in the log domain (mfbridge.solvers.accuracy
+# reads it)
+LOG_DOMAIN_NOTE = " (log-domain propagation: the endpoints span more than double precision)"
 
 
 def _attempt(problem: BridgeProblem, scale: float, run: Run, start: Start,
@@ -336,7 +338,7 @@ def _solve(problem: BridgeProblem, options: SolverOptions,
     outcome = _attempt(problem, 1.0, run, start)
     # the answer must be for the problem as given: a continuation that stops early holds a flow
     # for a larger noise or a weaker interaction, which is never returned
-    note = _LOG_NOTE if outcome.log_domain and options.kernel == "chain" else kernel_note
+    note = LOG_DOMAIN_NOTE if outcome.log_domain and options.kernel == "chain" else kernel_note
     answer, stopped = outcome, ""
     if (not outcome.stop and outcome.status != "converged" and options.noise_continuation > 0
             and not outcome.budget_spent):
