@@ -3,6 +3,7 @@ the two bridges a multi-start solve reports (issue 13)."""
 
 from __future__ import annotations
 
+import re
 import warnings
 
 import pytest
@@ -66,7 +67,9 @@ def test_fixed_point_failure_falls_back_to_the_direct_solver():
         result = solve_bridge(problem)
     assert result.status == "converged" and result.method == "direct"
     assert result.message.startswith("converged by the direct solver (χ = ρ), the fallback")
-    assert "after the fixed point ended not converged" in result.message
+    # the fixed point ends diverged after 217 iterations (not converged after 205 before
+    # Anderson was kept while improving far out, issue 13); either way the message names it
+    assert re.search("after the fixed point ended (not converged|diverged)", result.message)
     alone = solve_direct(problem, DirectOptions())
     assert result.cost == alone.cost
     assert "fixed_point" in result.timings

@@ -21,11 +21,12 @@ in 185 iterations at -8 and stagnated (residual ~5e-4, σ = 0.8, 256 × 100) at 
   Keyes, J. Comput. Phys. 193, 2004), from the start;
 * ``"auto"`` (default): Anderson while it makes progress — easy problems converge in ~13
   Anderson iterations and never see the rest — and Newton–Krylov from the best iterate as soon
-  as Anderson stalls (:data:`STALL_WINDOW` iterations without a new best residual, less than a
-  factor :data:`SLOW_FACTOR` gained over :data:`SLOW_WINDOW` iterations, or a residual rising
-  :data:`DIVERGENCE_FACTOR`-fold), provided the best residual is at most :data:`NEWTON_FROM`;
-  from farther out the attempt ends ``"not_converged"`` and the solver's continuations (in
-  the noise, in the interaction strength) start instead. When no continuation follows
+  as Anderson stalls (:func:`handover`: :data:`STALL_WINDOW` iterations without a new best
+  residual, or a slow decrease with no new best for :data:`PAUSE` iterations, or a residual
+  rising :data:`DIVERGENCE_FACTOR`-fold), provided the best residual is at most
+  :data:`NEWTON_FROM`; from farther out, once Anderson has stopped improving, the attempt ends
+  ``"not_converged"`` and the solver's continuations (in the noise, in the interaction
+  strength) start instead. When no continuation follows
   (:attr:`Run.give_up_far` false: the further starts of ``solver.starts``, or both
   continuations switched off) Anderson goes on instead: the tilted starts of the swarm passing an
   obstacle (tests/test_multistart.py) stay above residual 1 for ~300 iterations and converge
@@ -71,11 +72,22 @@ DIVERGENCE_FACTOR = 10.0
 INNER_FRACTION = 1e-4
 INNER_FRACTION_MIN = 1e-6
 STAGNATION = 4
-# "auto": Newton-Krylov takes over after STALL_WINDOW Anderson iterations without a new best
-# residual, or when the best residual fell by less than SLOW_FACTOR over SLOW_WINDOW iterations
+# "auto" (see handover): Newton-Krylov takes over after STALL_WINDOW Anderson iterations without a
+# new best residual, or when the best residual fell by less than 1/SLOW_FACTOR over SLOW_WINDOW
+# iterations and has not improved for PAUSE; far out (best above NEWTON_FROM) the attempt ends
+# after SLOW_WINDOW iterations without a new best, or less than 1/FAR_FACTOR over SLOW_WINDOW.
+# Both wait while Anderson still improves: the reference LQ case at sigma = 0.02 (1600 cells,
+# 32 steps) keeps its best residual 1.035 for 10 iterations, the residual rising to 4.8, then
+# falls to 0.49 and converges at iteration 39 (68 CPU s); the earlier rule ended it at iteration
+# 26 as "far" (best 5.3 -> 1.035 over 20 iterations) and the noise continuation took 112
+# iterations, 131 CPU s. The strong-attraction hand-overs are unchanged (64 cells x 20 steps,
+# core -10: no new best for 10, Newton from iteration 28; core -8: slow and 6 iterations without
+# a new best, Newton from iteration 88).
 STALL_WINDOW = 10
 SLOW_WINDOW = 20
 SLOW_FACTOR = 0.1
+FAR_FACTOR = 0.5
+PAUSE = 5
 # GMRES restart length and Jacobian products allowed per Newton step
 KRYLOV_RESTART = 40
 KRYLOV_PRODUCTS = 120
@@ -413,12 +425,13 @@ def _anderson(g: _Map, run: Run, start: Start, state: _State) -> str:
         else:
             since_best += 1
         bests.append(best)
-        stalled = len(bests) > STALL_WINDOW and bests[-1] == bests[-1 - STALL_WINDOW]
-        slow = len(bests) > SLOW_WINDOW and bests[-1] > SLOW_FACTOR * bests[-1 - SLOW_WINDOW]
-        if auto and (stalled or slow) and (best <= NEWTON_FROM or run.give_up_far):
+        verdict = handover(bests) if auto else ""
+        if verdict == "far" and not run.give_up_far:
+            verdict = ""  # no continuation follows: Anderson goes on
+        if verdict:
             # near a fixed point Newton-Krylov takes over; far from any, this start is hopeless
             # and the caller's continuation (noise, interaction strength) should try instead
-            return "stalled_anderson" if best <= NEWTON_FROM else "far"
+            return verdict
         if since_best >= STAGNATION and fraction > INNER_FRACTION_MIN:
             # inexact sub-solves enter V amplified like 1/sigma^2: at small noise the outer
             # iteration stagnates at the sub-solves' error, so solve them more exactly
@@ -427,6 +440,29 @@ def _anderson(g: _Map, run: Run, start: Start, state: _State) -> str:
         x_next = mixer.next(point.x, point.x + point.f)
         p_bar, v_bar = g.unpack(x_next, v_bar)
     return "stalled_anderson" if iterations < options.max_iter else "max_iter"
+
+
+def handover(bests: list[float]) -> str:
+    """Whether ``"auto"`` ends Anderson, from ``bests`` (the best residual after each iteration).
+
+    Let *paused* be the iterations since the last new best and *gained* the factor the best fell
+    over the last :data:`SLOW_WINDOW` iterations. Near a fixed point (best residual at most
+    :data:`NEWTON_FROM`) Newton–Krylov takes over (``"stalled_anderson"``) when paused reaches
+    :data:`STALL_WINDOW`, or when gained is below 1/:data:`SLOW_FACTOR` and paused reaches
+    :data:`PAUSE`. Farther out the attempt ends (``"far"``: a continuation should try) when paused
+    reaches :data:`SLOW_WINDOW` or gained is below 1/:data:`FAR_FACTOR`. Returns ``""`` while
+    Anderson should go on."""
+    if len(bests) <= STALL_WINDOW or bests[-1] <= 0.0:
+        return ""
+    best = bests[-1]
+    paused = 0
+    while paused + 1 < len(bests) and bests[-2 - paused] == best:
+        paused += 1
+    gained = bests[-1 - SLOW_WINDOW] / best if len(bests) > SLOW_WINDOW else math.inf
+    if best <= NEWTON_FROM:
+        slow = gained < 1.0 / SLOW_FACTOR and paused >= PAUSE
+        return "stalled_anderson" if paused >= STALL_WINDOW or slow else ""
+    return "far" if paused >= SLOW_WINDOW or gained < 1.0 / FAR_FACTOR else ""
 
 
 def _newton(g: _Map, run: Run, state: _State) -> str:
