@@ -91,6 +91,8 @@ METHODS = ("newton", "truncated", "lbfgs")
 NEWTON_FLOOR = 1e-6
 OT_MAX_CELLS = 4096
 DISPLACEMENT_CUT = 1e-9
+# share of the linear interpolation in every displacement start (:func:`displacement_start`)
+DISPLACEMENT_BLEND = 1e-3
 FLOOR_MIX = 1e-12
 
 
@@ -239,6 +241,15 @@ def displacement_interpolation(problem: BridgeProblem) -> np.ndarray:
     return out
 
 
+def displacement_start(problem: BridgeProblem, linear: np.ndarray) -> np.ndarray:
+    """A start of masses (K+1, *grid.shape): ``(1 - b) D + b L`` with D
+    :func:`displacement_interpolation`, ``linear`` = L a linear interpolation of the endpoints
+    and b = :data:`DISPLACEMENT_BLEND` (which keeps the guess off D's piecewise-constant quantile
+    profile and gives every cell some mass). Raises :class:`InputError` as D does."""
+    return (1 - DISPLACEMENT_BLEND) * displacement_interpolation(problem) + (
+        DISPLACEMENT_BLEND * linear)
+
+
 # --------------------------------------------------------------------------- solver
 
 
@@ -294,7 +305,7 @@ def _solve(problem: BridgeProblem, options: DirectOptions,
     # endpoints may vanish on far cells; the interior must not (χ > 0, barrier)
     linear = (1 - FLOOR_MIX) * problem.linear_flow() + FLOOR_MIX / grid.size
     if options.warm_start == "displacement" and k_steps > 1:
-        guess = 0.999 * displacement_interpolation(problem) + 0.001 * linear
+        guess = displacement_start(problem, linear)
         if not inside(mob, mass * guess[1:-1] / vol):
             guess = linear
     else:
@@ -556,7 +567,7 @@ def _newton_start(problem: BridgeProblem, options: DirectOptions) -> np.ndarray:
     linear = problem.linear_flow()
     guess = linear
     if options.warm_start == "displacement" and problem.steps > 1:
-        guess = 0.999 * displacement_interpolation(problem) + 0.001 * linear
+        guess = displacement_start(problem, linear)
         mass, vol = options.total_mass, grid.cell_volume
         if not inside(options.mobility, mass * ((1 - NEWTON_FLOOR) * guess[1:-1]
                                                  + NEWTON_FLOOR / grid.size) / vol):

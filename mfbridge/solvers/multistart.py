@@ -16,7 +16,8 @@ core of strength -10, range 0.5, σ = 1, demo endpoints, 64 cells × 20 steps, t
 both level-1 tilts converge to J = 4.6697831 and the displacement start to J = 4.1042056 (39
 outer iterations; flows 1.41 apart in max L1). It is the direct solver's warm start
 (:func:`mfbridge.solvers.direct.displacement_interpolation`), blended with
-:data:`DISPLACEMENT_BLEND` of the linear interpolation in the same way.
+:data:`~mfbridge.solvers.direct.DISPLACEMENT_BLEND` of the linear interpolation
+(:func:`mfbridge.solvers.direct.displacement_start`).
 
 Tilted guesses
 --------------
@@ -59,7 +60,7 @@ from mfbridge.errors import InputError, MultipleBridgesWarning
 from mfbridge.model.problem import BridgeProblem
 from mfbridge.numerics import observables
 from mfbridge.result import Alternative, BridgeResult
-from mfbridge.solvers.direct import displacement_interpolation
+from mfbridge.solvers.direct import displacement_start
 
 # Flows closer than this (max over time of the L1 distance of the masses) are one bridge; with
 # tol = 1e-9 the same fixed point reached from the cold start and from tilted guesses differed by
@@ -68,10 +69,6 @@ SAME_BRIDGE_L1 = 1e-3
 # the threshold grows with a looser outer tolerance: 1e3 x tol
 SAME_BRIDGE_TOL_FACTOR = 1e3
 TILT = 2.0  # endpoint widths the level-1 guess moves at T/2
-# share of the linear interpolation in the displacement start (as in the direct solver's warm
-# start, mfbridge.solvers.direct; the outer loop needs no positivity, it only keeps the guess
-# from being exactly the interpolation's piecewise-constant quantile profile)
-DISPLACEMENT_BLEND = 1e-3
 
 
 def same_bridge_threshold(tol: float) -> float:
@@ -120,15 +117,14 @@ def tilted_flows(problem: BridgeProblem, count: int) -> list[tuple[str, np.ndarr
 
 
 def displacement_flow(problem: BridgeProblem) -> np.ndarray | None:
-    """The displacement start: masses (K+1, *grid.shape), ``(1 - b) D + b L`` with D McCann's
-    displacement interpolation, L the linear one and b = :data:`DISPLACEMENT_BLEND`; ``None``
-    when the exact plan it needs is too large (2D/3D grids above
-    :data:`mfbridge.solvers.direct.OT_MAX_CELLS` cells)."""
+    """The displacement start: masses (K+1, *grid.shape),
+    :func:`mfbridge.solvers.direct.displacement_start` (McCann's displacement interpolation
+    blended with a little of the linear one); ``None`` when the exact plan it needs is too
+    large (2D/3D grids above :data:`mfbridge.solvers.direct.OT_MAX_CELLS` cells)."""
     try:
-        flow = displacement_interpolation(problem)
+        return displacement_start(problem, problem.linear_flow())
     except InputError:
         return None
-    return (1 - DISPLACEMENT_BLEND) * flow + DISPLACEMENT_BLEND * problem.linear_flow()
 
 
 def starting_flows(problem: BridgeProblem, count: int) -> list[tuple[str, np.ndarray]]:

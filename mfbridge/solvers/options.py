@@ -92,18 +92,14 @@ class SolverOptions:
     cross_check: str = "auto"
 
     def __post_init__(self) -> None:
-        if self.method not in METHODS:
-            raise unknown_name("method", self.method, METHODS)
-        if self.kernel not in KERNELS:
-            raise unknown_name("kernel", self.kernel, KERNELS)
-        if self.route not in ROUTES:
-            raise unknown_name("route", self.route, ROUTES)
-        if self.propagation not in PROPAGATIONS:
-            raise unknown_name("propagation", self.propagation, PROPAGATIONS)
-        if self.outer not in OUTER_METHODS:
-            raise unknown_name("outer method", self.outer, OUTER_METHODS)
-        if self.cross_check not in CROSS_CHECKS:
-            raise unknown_name("cross_check", self.cross_check, CROSS_CHECKS)
+        for what, value, known in (("method", self.method, METHODS),
+                                   ("kernel", self.kernel, KERNELS),
+                                   ("route", self.route, ROUTES),
+                                   ("propagation", self.propagation, PROPAGATIONS),
+                                   ("outer method", self.outer, OUTER_METHODS),
+                                   ("cross_check", self.cross_check, CROSS_CHECKS)):
+            if value not in known:
+                raise unknown_name(what, value, known)
         checks = [
             ("tol", self.tol > 0),
             ("sinkhorn_tol", self.sinkhorn_tol > 0),
