@@ -48,10 +48,12 @@ import numpy as np
 
 from mfbridge.errors import SuspectResultWarning
 from mfbridge.model.problem import BridgeProblem
+from mfbridge.numerics.reference import PairField
 from mfbridge.result import Alternative, BridgeResult
 from mfbridge.solvers.cost import flow_cost
 from mfbridge.solvers.direct import DirectOptions, solve_direct
 from mfbridge.solvers.multistart import flow_distance
+from mfbridge.solvers.options import SolverOptions
 from mfbridge.solvers.sanity import CHEAPER_SLACK
 
 MODES = ("auto", "always", "off")
@@ -120,15 +122,10 @@ class Comparison:
         return own + f"; flows {self.distance:.3g} apart (max L1)"
 
 
-def applies(problem: BridgeProblem, options: object) -> bool:
-    """Whether :func:`second_opinion` may run for a fixed-point solve with ``options`` (a
-    :class:`~mfbridge.solvers.options.SolverOptions`)."""
-    from mfbridge.numerics.reference import PairField
-
-    return (getattr(options, "cross_check", "off") != "off"
-            and getattr(options, "outer", "") == "auto"
-            and getattr(options, "method", "") == "optimal"
-            and problem.grid.dim in (1, 2)
+def applies(problem: BridgeProblem, options: SolverOptions) -> bool:
+    """Whether :func:`second_opinion` may run for a fixed-point solve with ``options``."""
+    return (options.cross_check != "off" and options.outer == "auto"
+            and options.method == "optimal" and problem.grid.dim in (1, 2)
             and not PairField(problem.grid, problem.interaction).is_zero)
 
 
